@@ -1,0 +1,568 @@
+"""Scenario files: TOML in, frozen typed objects out, every mistake named.
+
+A scenario states the population, the network model and its density rule,
+the outcome model, the design, the planned estimators and the simulation
+settings.  ``load_scenario(path)`` validates everything at once, at this
+boundary; the rest of the package trusts what it returns.  Every error names
+the file, the dotted key, what is allowed and what was received, and offers
+a fix when one is likely ("did you mean ...").
+"""
+
+from __future__ import annotations
+
+import difflib
+import hashlib
+import math
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Callable, Sequence
+
+from designcalc.density import DensityRule
+from designcalc.edge_models import KERNEL_FAMILIES, BlockModel, EdgeModel, KernelModel
+from designcalc.errors import DesignCalcError, ScenarioError
+from designcalc.outcomes import SPILLOVER_SHAPES, OutcomeModel
+
+__all__ = [
+    "Scenario",
+    "Population",
+    "Design",
+    "EstimatorPlan",
+    "SimulationSettings",
+    "load_scenario",
+    "parse_scenario",
+    "DIRECT_ESTIMATORS",
+    "DIRECT_VARIANCES",
+    "SPILLOVER_ESTIMATORS",
+    "ALTERNATIVES",
+]
+
+DIRECT_ESTIMATORS = ("hajek", "horvitz_thompson")
+DIRECT_VARIANCES = ("neyman", "two_hop", "two_hop_psd")
+SPILLOVER_ESTIMATORS = ("pc_balancing_corrected", "pc_balancing", "centred_ht", "exposure_regression")
+ALTERNATIVES = ("two-sided", "greater", "less")
+
+_MAX_UNITS = 2_000_000
+_MAX_REPLICATES = 10_000_000
+
+
+@dataclass(frozen=True)
+class Population:
+    """One network of each planned size (clustered populations will sit beside it)."""
+
+    units: tuple[int, ...]
+
+
+@dataclass(frozen=True)
+class Design:
+    """Bernoulli assignment at one or more treatment probabilities, and the test settings."""
+
+    treatment_probabilities: tuple[float, ...]
+    significance_level: float = 0.05
+    target_power: float = 0.8
+    alternative: str = "two-sided"
+
+
+@dataclass(frozen=True)
+class EstimatorPlan:
+    """Which estimators and variance estimators the analysis will use."""
+
+    direct: tuple[str, ...] = ("hajek",)
+    direct_variance: tuple[str, ...] = ("neyman",)
+    spillover: tuple[str, ...] = ("pc_balancing_corrected", "centred_ht")
+    centre: float = 0.0
+    eigenvectors: int | None = None  # None: the eigenvalue rule of METHODS.md §3.3
+
+
+@dataclass(frozen=True)
+class SimulationSettings:
+    """Monte Carlo settings: graphs per design point, assignments per graph, root seed."""
+
+    graphs: int = 40
+    assignments_per_graph: int = 25
+    seed: int = 1
+
+    @property
+    def replicates(self) -> int:
+        return self.graphs * self.assignments_per_graph
+
+
+@dataclass(frozen=True)
+class Scenario:
+    """A validated scenario: everything the engine needs, nothing unchecked."""
+
+    name: str
+    description: str
+    population: Population
+    network: EdgeModel
+    density: DensityRule
+    outcome: OutcomeModel
+    design: Design
+    estimators: EstimatorPlan
+    simulation: SimulationSettings
+    source: str = "<scenario>"
+    sha256: str = ""
+    text: str = field(default="", repr=False)
+
+
+# ---------------------------------------------------------------------------
+# A small reader that tracks which keys were used, so that unknown keys can be
+# reported with a "did you mean" suggestion.
+# ---------------------------------------------------------------------------
+_MISSING: Any = object()
+
+
+def _describe_type(value: object) -> str:
+    if isinstance(value, bool):
+        return "true/false"
+    if isinstance(value, (int, float)):
+        return "a number"
+    if isinstance(value, str):
+        return "text"
+    if isinstance(value, list):
+        return "a list"
+    if isinstance(value, dict):
+        return "a table"
+    return type(value).__name__
+
+
+class _Table:
+    """One TOML table with its dotted path; hands out validated values."""
+
+    def __init__(self, data: dict[str, Any], path: str, file: str, known: Sequence[str]) -> None:
+        self.data = data
+        self.path = path
+        self.file = file
+        self.known = tuple(known)
+        self.used: set[str] = set()
+
+    def key(self, name: str) -> str:
+        return f"{self.path}.{name}" if self.path else name
+
+    def error(self, name: str, message: str, *, allowed: str = "", received: object = None, hint: str = "") -> ScenarioError:
+        return ScenarioError(message, file=self.file, key=self.key(name), allowed=allowed, received=received, hint=hint)
+
+    def has(self, name: str) -> bool:
+        return name in self.data
+
+    def raw(self, name: str, default: Any = _MISSING) -> Any:
+        self.used.add(name)
+        if name in self.data:
+            return self.data[name]
+        if default is _MISSING:
+            raise self.error(name, "this key is required but missing", hint=f"add `{name} = ...` to the [{self.path or 'top'}] table")
+        return default
+
+    def number(
+        self,
+        name: str,
+        default: Any = _MISSING,
+        *,
+        low: float | None = None,
+        high: float | None = None,
+        low_open: bool = False,
+        high_open: bool = False,
+        integer: bool = False,
+    ) -> Any:
+        if name not in self.data and default is not _MISSING:
+            self.used.add(name)
+            return default
+        value = self.raw(name)
+        return self.check_number(name, value, low=low, high=high, low_open=low_open, high_open=high_open, integer=integer)
+
+    def check_number(
+        self,
+        name: str,
+        value: Any,
+        *,
+        low: float | None = None,
+        high: float | None = None,
+        low_open: bool = False,
+        high_open: bool = False,
+        integer: bool = False,
+    ) -> Any:
+        allowed = _range_text(low, high, low_open, high_open, integer)
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            hint = ""
+            if isinstance(value, str):
+                try:
+                    float(value)
+                    hint = "write the number without quotes"
+                except ValueError:
+                    pass
+            raise self.error(name, f"must be {'a whole number' if integer else 'a number'}, not {_describe_type(value)}", allowed=allowed, received=value, hint=hint)
+        if integer and (isinstance(value, float) and not value.is_integer()):
+            raise self.error(name, "must be a whole number", allowed=allowed, received=value)
+        if isinstance(value, float) and not math.isfinite(value):
+            raise self.error(name, "must be a finite number", allowed=allowed, received=value)
+        below = low is not None and (value <= low if low_open else value < low)
+        above = high is not None and (value >= high if high_open else value > high)
+        if below or above:
+            raise self.error(name, "is out of range", allowed=allowed, received=value)
+        return int(value) if integer else float(value)
+
+    def text(self, name: str, default: Any = _MISSING) -> Any:
+        if name not in self.data and default is not _MISSING:
+            self.used.add(name)
+            return default
+        value = self.raw(name)
+        if not isinstance(value, str):
+            raise self.error(name, f"must be text in quotes, not {_describe_type(value)}", received=value)
+        return value
+
+    def choice(self, name: str, choices: Sequence[str], default: Any = _MISSING) -> Any:
+        if name not in self.data and default is not _MISSING:
+            self.used.add(name)
+            return default
+        value = self.raw(name)
+        return self.check_choice(name, value, choices)
+
+    def check_choice(self, name: str, value: Any, choices: Sequence[str]) -> str:
+        allowed = "one of " + ", ".join(f'"{c}"' for c in choices)
+        if not isinstance(value, str):
+            raise self.error(name, f"must be text in quotes, not {_describe_type(value)}", allowed=allowed, received=value)
+        if value not in choices:
+            close = difflib.get_close_matches(value, choices, n=1, cutoff=0.6)
+            raise self.error(name, "is not a recognised option", allowed=allowed, received=value, hint=f'did you mean "{close[0]}"?' if close else "")
+        return value
+
+    def number_list(self, name: str, default: Any = _MISSING, *, allow_scalar: bool = True, min_length: int = 1, **limits: Any) -> Any:
+        if name not in self.data and default is not _MISSING:
+            self.used.add(name)
+            return default
+        value = self.raw(name)
+        if allow_scalar and isinstance(value, (int, float)) and not isinstance(value, bool):
+            value = [value]
+        if not isinstance(value, list):
+            raise self.error(name, f"must be a list of numbers, not {_describe_type(value)}", received=value, hint=f"write it as `{name} = [ ... ]`")
+        if len(value) < min_length:
+            raise self.error(name, f"must hold at least {min_length} value{'s' if min_length > 1 else ''}", received=value)
+        return tuple(self.check_number(f"{name}[{i}]", v, **limits) for i, v in enumerate(value))
+
+    def choice_list(self, name: str, choices: Sequence[str], default: Any = _MISSING) -> Any:
+        if name not in self.data and default is not _MISSING:
+            self.used.add(name)
+            return default
+        value = self.raw(name)
+        if isinstance(value, str):
+            value = [value]
+        if not isinstance(value, list) or not value:
+            raise self.error(name, "must be a non-empty list of names", allowed="a list drawn from " + ", ".join(f'"{c}"' for c in choices), received=value)
+        out = tuple(self.check_choice(f"{name}[{i}]", v, choices) for i, v in enumerate(value))
+        if len(set(out)) != len(out):
+            raise self.error(name, "lists the same name twice", received=value)
+        return out
+
+    def table(self, name: str, known: Sequence[str], *, required: bool = True) -> "_Table | None":
+        self.used.add(name)
+        if name not in self.data:
+            if required:
+                raise self.error(name, "this table is required but missing", hint=f"add a [{self.key(name)}] table")
+            return None
+        value = self.data[name]
+        if not isinstance(value, dict):
+            raise self.error(name, f"must be a table, not {_describe_type(value)}", received=value, hint=f"write it as a [{self.key(name)}] section")
+        return _Table(value, self.key(name), self.file, known)
+
+    def finish(self) -> None:
+        """Reject keys that no reader asked for, with a suggestion."""
+        for name in self.data:
+            if name in self.used:
+                continue
+            close = difflib.get_close_matches(name, self.known, n=1, cutoff=0.6)
+            hint = f"did you mean `{close[0]}`?" if close else ""
+            allowed = "known keys here: " + ", ".join(self.known)
+            raise ScenarioError("is not a key designcalc knows", file=self.file, key=self.key(name), allowed=allowed, hint=hint)
+
+
+def _range_text(low: float | None, high: float | None, low_open: bool, high_open: bool, integer: bool) -> str:
+    kind = "a whole number" if integer else "a number"
+    if low is None and high is None:
+        return kind
+    if high is None:
+        return f"{kind} {'>' if low_open else '>='} {low:g}"
+    if low is None:
+        return f"{kind} {'<' if high_open else '<='} {high:g}"
+    left = "(" if low_open else "["
+    right = ")" if high_open else "]"
+    return f"{kind} in {left}{low:g}, {high:g}{right}"
+
+
+# ---------------------------------------------------------------------------
+# Section readers
+# ---------------------------------------------------------------------------
+_TOP_KEYS = ("scenario", "population", "network", "outcome", "design", "estimators", "simulation")
+_SCENARIO_KEYS = ("name", "description")
+_POPULATION_KEYS = ("units",)
+_NETWORK_KEYS = ("model", "block_shares", "block_affinity", "kernel", "degree_ratio", "length_scale", "floor", "amplitudes", "expression", "density")
+_DENSITY_KEYS = ("mean_degree", "reference_units", "growth_exponent")
+_OUTCOME_KEYS = (
+    "kind", "baseline", "type_effect", "block_effects", "noise_sd", "direct_effect", "spillover_effect",
+    "spillover_shape", "saturation_rate", "threshold", "interaction", "link", "exposure",
+)
+_DESIGN_KEYS = ("treatment_probability", "significance_level", "target_power", "alternative")
+_ESTIMATOR_KEYS = ("direct", "direct_variance", "spillover", "centre", "eigenvectors")
+_SIMULATION_KEYS = ("graphs", "assignments_per_graph", "seed")
+
+
+def _read_population(top: _Table) -> Population:
+    t = top.table("population", _POPULATION_KEYS)
+    assert t is not None
+    units = t.number_list("units", low=4, high=_MAX_UNITS, integer=True)
+    if len(set(units)) != len(units):
+        raise t.error("units", "lists the same size twice", received=list(units))
+    t.finish()
+    return Population(units=tuple(sorted(units)))
+
+
+def _wrap_model_error(t: _Table, key: str, build: Callable[[], Any]) -> Any:
+    try:
+        return build()
+    except DesignCalcError as exc:
+        if isinstance(exc, ScenarioError):
+            raise
+        raise t.error(key, str(exc)) from None
+
+
+def _read_network(top: _Table) -> tuple[EdgeModel, DensityRule]:
+    t = top.table("network", _NETWORK_KEYS)
+    assert t is not None
+    model = t.choice("model", ("blocks", "kernel"))
+    edge_model: EdgeModel
+    if model == "blocks":
+        shares = t.number_list("block_shares", low=0, high=1, low_open=True, allow_scalar=False)
+        if abs(sum(shares) - 1) > 1e-6:
+            raise t.error("block_shares", f"must sum to 1; they sum to {sum(shares):.6g}", received=list(shares), hint="divide each share by their sum")
+        raw = t.raw("block_affinity")
+        k = len(shares)
+        if not isinstance(raw, list) or len(raw) != k or not all(isinstance(r, list) for r in raw):
+            raise t.error("block_affinity", f"must be a {k} x {k} list of lists (one row per block)", received=raw)
+        rows = []
+        for i, row in enumerate(raw):
+            if len(row) != k:
+                raise t.error(f"block_affinity[{i}]", f"must hold {k} numbers, one per block", received=row)
+            rows.append(tuple(t.check_number(f"block_affinity[{i}][{j}]", v, low=0) for j, v in enumerate(row)))
+        for i in range(k):
+            for j in range(i + 1, k):
+                if not math.isclose(rows[i][j], rows[j][i], rel_tol=1e-12, abs_tol=1e-15):
+                    raise t.error(
+                        f"block_affinity[{i}][{j}]",
+                        f"the affinity matrix must be symmetric: [{i}][{j}] = {rows[i][j]:g} but [{j}][{i}] = {rows[j][i]:g}",
+                        hint="links are undirected; make the two entries equal",
+                    )
+        edge_model = _wrap_model_error(t, "block_affinity", lambda: BlockModel(shares=tuple(shares), affinity=tuple(rows)))
+        for name in ("kernel", "degree_ratio", "length_scale", "floor", "amplitudes", "expression"):
+            if t.has(name):
+                raise t.error(name, "belongs to a kernel model, but model = \"blocks\"", hint="remove it, or set model = \"kernel\"")
+    else:
+        family = t.choice("kernel", tuple(KERNEL_FAMILIES))
+        for name in ("block_shares", "block_affinity"):
+            if t.has(name):
+                raise t.error(name, "belongs to a block model, but model = \"kernel\"", hint="remove it, or set model = \"blocks\"")
+        params: dict[str, Any] = {}
+        for other_family, names in KERNEL_FAMILIES.items():
+            for name in names:
+                if other_family != family and name not in KERNEL_FAMILIES[family] and t.has(name):
+                    raise t.error(name, f"is not a parameter of the '{family}' kernel", allowed=", ".join(KERNEL_FAMILIES[family]))
+        if family == "degree_gradient":
+            params["degree_ratio"] = t.number("degree_ratio", low=1, high=1e6)
+        elif family == "distance_decay":
+            params["length_scale"] = t.number("length_scale", low=0, high=100, low_open=True)
+            params["floor"] = t.number("floor", 0.0, low=0, high=1e6)
+        elif family == "cosine":
+            params["amplitudes"] = t.number_list("amplitudes", low=-1, high=1)
+        else:
+            params["expression"] = t.text("expression")
+        edge_model = _wrap_model_error(
+            t, KERNEL_FAMILIES[family][0], lambda: KernelModel(family=family, **params)
+        )
+    d = t.table("density", _DENSITY_KEYS)
+    assert d is not None
+    mean_degree = d.number("mean_degree", low=0, high=1e6, low_open=True)
+    reference = d.number("reference_units", low=2, high=_MAX_UNITS, integer=True)
+    gamma = d.number("growth_exponent", 0.0, low=0, high=1)
+    if mean_degree >= reference - 1:
+        raise d.error("mean_degree", f"must be below reference_units - 1 = {reference - 1} (a unit cannot link to more than everyone else)", received=mean_degree)
+    d.finish()
+    t.finish()
+    return edge_model, DensityRule(mean_degree=mean_degree, reference_units=reference, growth_exponent=gamma)
+
+
+def _read_outcome(top: _Table, network: EdgeModel) -> OutcomeModel:
+    t = top.table("outcome", _OUTCOME_KEYS)
+    assert t is not None
+    kind = t.choice("kind", ("continuous", "binary"), "continuous")
+    t.choice("exposure", ("fraction",), "fraction")
+    shape = t.choice("spillover_shape", SPILLOVER_SHAPES, "linear")
+    values: dict[str, Any] = {"kind": kind, "spillover_shape": shape}
+    if kind == "binary":
+        values["link"] = t.choice("link", ("identity", "logistic"), "identity")
+        if t.has("noise_sd"):
+            raise t.error("noise_sd", "applies to continuous outcomes only; binary outcomes draw their own noise", hint="remove it, or set kind = \"continuous\"")
+        if values["link"] == "identity":
+            values["baseline"] = t.number("baseline", low=0, high=1)
+        else:
+            values["baseline"] = t.number("baseline", low=-50, high=50)
+    else:
+        if t.has("link"):
+            raise t.error("link", "applies to binary outcomes only", hint="remove it, or set kind = \"binary\"")
+        values["baseline"] = t.number("baseline", 0.0, low=-1e12, high=1e12)
+        values["noise_sd"] = t.number("noise_sd", low=0, high=1e12)
+    big = 1e12
+    values["direct_effect"] = t.number("direct_effect", low=-big, high=big)
+    values["spillover_effect"] = t.number("spillover_effect", low=-big, high=big)
+    values["interaction"] = t.number("interaction", 0.0, low=-big, high=big)
+    if shape == "saturating":
+        values["saturation_rate"] = t.number("saturation_rate", 4.0, low=0, high=200, low_open=True)
+    elif t.has("saturation_rate"):
+        raise t.error("saturation_rate", f"applies only to spillover_shape = \"saturating\" (here \"{shape}\")", hint="remove it")
+    if shape == "threshold":
+        values["threshold"] = t.number("threshold", low=0, high=1, low_open=True)
+    elif t.has("threshold"):
+        raise t.error("threshold", f"applies only to spillover_shape = \"threshold\" (here \"{shape}\")", hint="remove it")
+    if t.has("type_effect"):
+        text = t.text("type_effect")
+        _wrap_model_error(t, "type_effect", lambda: OutcomeModel(type_effect=text))
+        values["type_effect"] = text
+    if t.has("block_effects"):
+        if not isinstance(network, BlockModel):
+            raise t.error("block_effects", "needs a block model (network.model = \"blocks\")", hint="use type_effect, an expression in u, for kernels")
+        effects = t.number_list("block_effects", low=-big, high=big, allow_scalar=False)
+        if len(effects) != network.n_blocks:
+            raise t.error("block_effects", f"must hold one value per block ({network.n_blocks})", received=list(effects))
+        values["block_effects"] = effects
+    t.finish()
+    return _wrap_model_error(t, "kind", lambda: OutcomeModel(**values))
+
+
+def _read_design(top: _Table) -> Design:
+    t = top.table("design", _DESIGN_KEYS)
+    assert t is not None
+    probs = t.number_list("treatment_probability", low=0, high=1, low_open=True, high_open=True)
+    if len(set(probs)) != len(probs):
+        raise t.error("treatment_probability", "lists the same probability twice", received=list(probs))
+    alpha = t.number("significance_level", 0.05, low=0, high=0.5, low_open=True, high_open=True)
+    power = t.number("target_power", 0.8, low=0, high=1, low_open=True, high_open=True)
+    alternative = t.choice("alternative", ALTERNATIVES, "two-sided")
+    t.finish()
+    return Design(tuple(sorted(probs)), alpha, power, alternative)
+
+
+def _read_estimators(top: _Table, outcome: OutcomeModel) -> EstimatorPlan:
+    t = top.table("estimators", _ESTIMATOR_KEYS, required=False)
+    if t is None:
+        return EstimatorPlan(centre=outcome.baseline)
+    direct = t.choice_list("direct", DIRECT_ESTIMATORS, ("hajek",))
+    variance = t.choice_list("direct_variance", DIRECT_VARIANCES, ("neyman",))
+    spillover = t.choice_list("spillover", SPILLOVER_ESTIMATORS, ("pc_balancing_corrected", "centred_ht"))
+    # The centring constant must be fixed before the data exist; the baseline
+    # is the planner's own prior guess of the outcome level.
+    centre = t.number("centre", outcome.baseline, low=-1e12, high=1e12)
+    eig = t.raw("eigenvectors", "auto")
+    if eig == "auto":
+        k: int | None = None
+    else:
+        if isinstance(eig, str):
+            raise t.error("eigenvectors", "must be \"auto\" or a whole number", allowed="\"auto\" or a whole number in [0, 50]", received=eig)
+        k = t.check_number("eigenvectors", eig, low=0, high=50, integer=True)
+    t.finish()
+    return EstimatorPlan(direct, variance, spillover, centre, k)
+
+
+def _read_simulation(top: _Table) -> SimulationSettings:
+    t = top.table("simulation", _SIMULATION_KEYS, required=False)
+    if t is None:
+        return SimulationSettings()
+    graphs = t.number("graphs", 40, low=1, high=1_000_000, integer=True)
+    per_graph = t.number("assignments_per_graph", 25, low=1, high=100_000, integer=True)
+    seed = t.number("seed", 1, low=0, high=2**63 - 1, integer=True)
+    if graphs * per_graph > _MAX_REPLICATES:
+        raise t.error("graphs", f"graphs x assignments_per_graph must be at most {_MAX_REPLICATES:,}", received=graphs * per_graph)
+    t.finish()
+    return SimulationSettings(graphs, per_graph, seed)
+
+
+def parse_scenario(text: str, *, source: str = "<scenario>") -> Scenario:
+    """Validate the TOML text of a scenario.
+
+    Parameters
+    ----------
+    text
+        The scenario's TOML text.
+    source
+        The file name to quote in error messages.
+
+    Returns
+    -------
+    Scenario
+
+    Raises
+    ------
+    ScenarioError
+        For any mistake, naming the file, the dotted key, what is allowed and
+        what was received.
+    """
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ScenarioError(f"is not valid TOML: {exc}", file=source, hint="check quotes, brackets and '=' signs on the line named") from None
+    top = _Table(data, "", source, _TOP_KEYS)
+    meta = top.table("scenario", _SCENARIO_KEYS, required=False)
+    name = description = ""
+    if meta is not None:
+        name = meta.text("name", "")
+        description = meta.text("description", "")
+        meta.finish()
+    population = _read_population(top)
+    network, density = _read_network(top)
+    outcome = _read_outcome(top, network)
+    design = _read_design(top)
+    estimators = _read_estimators(top, outcome)
+    simulation = _read_simulation(top)
+    top.finish()
+    for n in population.units:
+        if density.target_mean_degree(n) >= n - 1:
+            raise ScenarioError(
+                f"at {n} units the density rule asks for mean degree {density.target_mean_degree(n):.4g}, but a unit can link to at most {n - 1} others",
+                file=source, key="network.density.mean_degree", hint="lower mean_degree or growth_exponent, or plan larger networks",
+            )
+    return Scenario(
+        name=name or Path(source).stem,
+        description=description,
+        population=population,
+        network=network,
+        density=density,
+        outcome=outcome,
+        design=design,
+        estimators=estimators,
+        simulation=simulation,
+        source=source,
+        sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
+        text=text,
+    )
+
+
+def load_scenario(path: str | Path) -> Scenario:
+    """Read and validate a scenario file.
+
+    Examples
+    --------
+    >>> from pathlib import Path
+    >>> s = load_scenario(Path(__file__).parents[1] / "scenarios" / "lake_orrin_savings.toml")
+    >>> s.network.kind
+    'blocks'
+    """
+    path = Path(path)
+    try:
+        raw = path.read_bytes()
+    except FileNotFoundError:
+        raise ScenarioError("no such file", file=str(path), hint="check the path; `designcalc new` writes a starter scenario") from None
+    except IsADirectoryError:
+        raise ScenarioError("is a folder, not a scenario file", file=str(path)) from None
+    except OSError as exc:
+        raise ScenarioError(f"cannot be read: {exc.strerror}", file=str(path)) from None
+    try:
+        text = raw.decode("utf-8")
+    except UnicodeDecodeError:
+        raise ScenarioError("is not UTF-8 text", file=str(path), hint="save the scenario as plain UTF-8 text") from None
+    return parse_scenario(text, source=path.name)
