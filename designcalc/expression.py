@@ -61,13 +61,13 @@ import numpy as np
 from designcalc.errors import ExpressionError
 
 __all__ = [
-    "Expression",
-    "compile_expression",
-    "FUNCTIONS",
     "CONSTANTS",
+    "FUNCTIONS",
+    "MAX_DEPTH",
     "MAX_LENGTH",
     "MAX_NODES",
-    "MAX_DEPTH",
+    "Expression",
+    "compile_expression",
 ]
 
 MAX_LENGTH = 500
@@ -100,7 +100,9 @@ FUNCTIONS: Mapping[str, tuple[Callable[..., np.ndarray], tuple[str, ...]]] = {
 
 CONSTANTS: Mapping[str, float] = {"pi": math.pi, "e": math.e}
 
-_BINARY_OPERATORS: dict[type[ast.operator], Callable[[np.ndarray, np.ndarray], np.ndarray]] = {
+_BINARY_OPERATORS: dict[
+    type[ast.operator], Callable[[np.ndarray, np.ndarray], np.ndarray]
+] = {
     ast.Add: np.add,
     ast.Sub: np.subtract,
     ast.Mult: np.multiply,
@@ -166,7 +168,9 @@ _Evaluator = Callable[[Mapping[str, np.ndarray]], np.ndarray]
 
 def _allowed_summary(variables: tuple[str, ...]) -> str:
     names = ", ".join(variables) if variables else "(none)"
-    calls = ", ".join(f"{name}({', '.join(args)})" for name, (_, args) in FUNCTIONS.items())
+    calls = ", ".join(
+        f"{name}({', '.join(args)})" for name, (_, args) in FUNCTIONS.items()
+    )
     return (
         f"numbers; the variables {names}; the constants {', '.join(CONSTANTS)}; "
         f"+ - * / ** and parentheses; the functions {calls}"
@@ -176,7 +180,9 @@ def _allowed_summary(variables: tuple[str, ...]) -> str:
 class _Compiler:
     """Validates one parsed expression and builds its evaluator."""
 
-    def __init__(self, text: str, source: str, offset: int, variables: tuple[str, ...]) -> None:
+    def __init__(
+        self, text: str, source: str, offset: int, variables: tuple[str, ...]
+    ) -> None:
         self.text = text  # the user's text, for messages
         self.source = source  # what was parsed (whitespace normalised, left-stripped)
         self.offset = offset  # characters stripped from the left of ``text``
@@ -187,7 +193,9 @@ class _Compiler:
         """An ExpressionError stating the problem, where it is, and what is allowed."""
         return _error(self.text, problem, column, self.variables, hint)
 
-    def refuse(self, construct: str, column: int | None, hint: str = "") -> ExpressionError:
+    def refuse(
+        self, construct: str, column: int | None, hint: str = ""
+    ) -> ExpressionError:
         """An ExpressionError for a construct that is off the whitelist."""
         return self.fail(f"{construct} is not allowed", column, hint)
 
@@ -201,7 +209,9 @@ class _Compiler:
     def suggest(self, name: str, candidates: list[str]) -> str:
         # Compare case-insensitively so PI, Exp and Cos find pi, exp and cos.
         lowered = {candidate.lower(): candidate for candidate in candidates}
-        matches = difflib.get_close_matches(name.lower(), list(lowered), n=3, cutoff=0.6)
+        matches = difflib.get_close_matches(
+            name.lower(), list(lowered), n=3, cutoff=0.6
+        )
         if not matches:
             return ""
         return "did you mean " + " or ".join(repr(lowered[m]) for m in matches) + "?"
@@ -214,7 +224,9 @@ class _Compiler:
         nodes = [(tree.body, 1)]
         for node, depth in nodes:  # breadth-first: the list grows while it is read
             if len(nodes) > MAX_NODES:
-                raise self.fail(f"the expression has more than {MAX_NODES} syntax elements", None)
+                raise self.fail(
+                    f"the expression has more than {MAX_NODES} syntax elements", None
+                )
             nodes.extend(
                 (child, depth + 1)
                 for child in ast.iter_child_nodes(node)
@@ -224,7 +236,10 @@ class _Compiler:
         if depth > MAX_DEPTH:
             # The compiler and evaluator recurse once per level; this keeps them far from
             # Python's recursion limit whatever stack the caller already uses.
-            raise self.fail(f"the expression nests deeper than {MAX_DEPTH} levels", self.column(node))
+            raise self.fail(
+                f"the expression nests deeper than {MAX_DEPTH} levels",
+                self.column(node),
+            )
 
     # -- compiling ---------------------------------------------------------------
     def build(self, node: ast.AST) -> tuple[_Evaluator, bool]:
@@ -296,7 +311,9 @@ class _Compiler:
         if name in FUNCTIONS:
             args = ", ".join(FUNCTIONS[name][1])
             raise self.fail(
-                f"{name!r} is a function and must be called", column, f"e.g. {name}({args})"
+                f"{name!r} is a function and must be called",
+                column,
+                f"e.g. {name}({args})",
             )
         hint = self.suggest(name, [*self.variables, *CONSTANTS, *FUNCTIONS])
         raise self.refuse(f"the unknown name {name!r}", column, hint)
@@ -313,13 +330,19 @@ class _Compiler:
     def build_binary(self, node: ast.BinOp) -> tuple[_Evaluator, bool]:
         ufunc = _BINARY_OPERATORS.get(type(node.op))
         if ufunc is None:
-            what, hint = _REFUSED_OPERATORS.get(type(node.op), (type(node.op).__name__, ""))
+            what, hint = _REFUSED_OPERATORS.get(
+                type(node.op), (type(node.op).__name__, "")
+            )
             # BinOp has no position of its own operator; point at the gap after the left side.
             column = self.offset + (getattr(node.left, "end_col_offset", None) or 0) + 1
             raise self.refuse(what, column, hint)
         left, left_constant = self.build(node.left)
         right, right_constant = self.build(node.right)
-        return (lambda env: ufunc(left(env), right(env))), left_constant and right_constant
+
+        def evaluate(env: Mapping[str, np.ndarray]) -> np.ndarray:
+            return ufunc(left(env), right(env))
+
+        return evaluate, left_constant and right_constant
 
     def build_call(self, node: ast.Call) -> tuple[_Evaluator, bool]:
         column = self.column(node)
@@ -348,7 +371,8 @@ class _Compiler:
             raise self.refuse(f"a call of the unknown function {name!r}", column, hint)
         implementation, argument_names = FUNCTIONS[name]
         signature = f"{name}({', '.join(argument_names)})"
-        for keyword in node.keywords:
+        if node.keywords:
+            keyword = node.keywords[0]
             shown = f"'{keyword.arg}='" if keyword.arg is not None else "'**' unpacking"
             raise self.refuse(
                 f"the keyword argument {shown} in {name}(...)",
@@ -357,7 +381,9 @@ class _Compiler:
             )
         for argument in node.args:
             if isinstance(argument, ast.Starred):
-                raise self.refuse(f"a starred argument in {name}(...)", self.column(argument))
+                raise self.refuse(
+                    f"a starred argument in {name}(...)", self.column(argument)
+                )
         if len(node.args) != len(argument_names):
             raise self.fail(
                 f"{name} takes {len(argument_names)} argument(s); got {len(node.args)}",
@@ -390,8 +416,13 @@ class _Compiler:
             )
         return lambda env: value
 
+
 def _error(
-    text: str, problem: str, column: int | None, variables: tuple[str, ...], hint: str = ""
+    text: str,
+    problem: str,
+    column: int | None,
+    variables: tuple[str, ...],
+    hint: str = "",
 ) -> ExpressionError:
     if column is None:
         lines = [f"expression {_shorten(text)!r}: {problem}"]
@@ -450,7 +481,9 @@ def _compile(text: str, variables: tuple[str, ...]) -> _Evaluator:
     source = flat.lstrip(" ")
     offset = len(flat) - len(source)
     if not source.strip():
-        raise _error(text, "the expression is empty", None, variables, "write e.g. 1 + u")
+        raise _error(
+            text, "the expression is empty", None, variables, "write e.g. 1 + u"
+        )
     try:
         with warnings.catch_warnings():
             # e.g. "2(u)" may warn "'int' object is not callable"; our own message is clearer.
@@ -472,15 +505,17 @@ def _compile(text: str, variables: tuple[str, ...]) -> _Evaluator:
 
 
 def _check_variables(variables: object) -> tuple[str, ...]:
-    # These come from code, not from a scenario, so a mistake here is a bug: plain ValueError.
+    # These come from code, not from a scenario, so a mistake here is a bug, not an ExpressionError.
     if isinstance(variables, str) or not isinstance(variables, tuple | list):
-        raise ValueError(f"variables must be a tuple of names; got {variables!r}")
+        raise TypeError(f"variables must be a tuple of names; got {variables!r}")
     names = tuple(variables)
     for name in names:
         if not isinstance(name, str) or not name.isidentifier() or not name.isascii():
             raise ValueError(f"variable names must be ASCII identifiers; got {name!r}")
         if name in FUNCTIONS or name in CONSTANTS:
-            raise ValueError(f"variable name {name!r} clashes with a function or constant")
+            raise ValueError(
+                f"variable name {name!r} clashes with a function or constant"
+            )
     if len(set(names)) != len(names):
         raise ValueError(f"variable names must be distinct; got {names!r}")
     return names
@@ -557,7 +592,9 @@ class Expression:
                 f"expression {self.text!r} takes the variables {self.variables}; "
                 f"missing {missing}, unexpected {unexpected}"
             )
-        arrays = {name: np.asarray(values[name], dtype=np.float64) for name in self.variables}
+        arrays = {
+            name: np.asarray(values[name], dtype=np.float64) for name in self.variables
+        }
         shape = np.broadcast_shapes(*(array.shape for array in arrays.values()))
         with np.errstate(all="ignore"):
             result = self._evaluate(arrays)

@@ -1,0 +1,5 @@
+"""Allow ``python -m designcalc``."""
+
+from designcalc.cli.main import run
+
+run()

@@ -1,0 +1,52 @@
+"""``designcalc check SCENARIO``: what a scenario implies, before any simulation."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated
+
+import typer
+from rich.table import Table
+
+from designcalc.diagnostics import check_scenario
+from designcalc.scenario import load_scenario
+
+
+def register(app: typer.Typer) -> None:
+    @app.command("check")
+    def check(
+        scenario: Annotated[Path, typer.Argument(help="Scenario file (TOML).")],
+    ) -> None:
+        """Validate a scenario and show the density, isolates, spectrum, estimands and regime it implies."""
+        from designcalc.cli.main import stdout_console
+
+        console = stdout_console()
+        result = check_scenario(load_scenario(scenario))
+        s = result.scenario
+        console.print(f"[bold]{s.name}[/]  ({s.source}, sha256 {s.sha256[:12]}...)")
+        console.print(f"network: {s.network.describe()}; {s.density.describe()}")
+        console.print(f"outcome: {s.outcome.describe()}")
+        console.print(f"regime: [bold]{result.regime}[/]. {result.regime_explanation}", soft_wrap=True)
+        table = Table(title="What the density rule implies", title_justify="left")
+        for col in ("units", "rho_n", "mean degree (target)", "mean degree (expected)", "one draw", "isolates", "clipped", "leading eigenvalues of E[A]"):
+            table.add_column(col, justify="right")
+        for size in result.sizes:
+            d = size.density
+            table.add_row(
+                str(d.units), f"{d.rho:.3g}", f"{d.target_mean_degree:.3g}", f"{d.expected_mean_degree:.3g}",
+                f"{size.realised_mean_degree:.3g}", f"{size.expected_share_isolated:.1%}",
+                f"{d.shortfall:.1%} short" if d.clipped else "no",
+                ", ".join(f"{x:.3g}" for x in size.leading_eigenvalues[:4]),
+            )
+        console.print(table)
+        est = Table(title="Exact estimands on one simulated network", title_justify="left")
+        for col in ("units", "treatment probability", "direct", "spillover", "total", "global (all vs none)"):
+            est.add_column(col, justify="right")
+        for size in result.sizes:
+            for e in size.estimands:
+                est.add_row(str(size.density.units), f"{e.treatment_probability:g}", f"{e.direct:.4g}", f"{e.spillover:.4g}", f"{e.total:.4g}", f"{e.global_effect:.4g}")
+        console.print(est)
+        for w in result.warnings:
+            console.print(f"[yellow]warning:[/] {w}", soft_wrap=True)
+        if not result.warnings:
+            console.print("no warnings")

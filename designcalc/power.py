@@ -1,0 +1,330 @@
+"""Power tables: run the engine over the design grid and summarise with Monte Carlo error.
+
+Per design point, estimand and estimator the summary gives the mean true
+estimand (and its spread across graphs), mean estimate, bias, SD, RMSE,
+feasible power (the planned Wald test), oracle power (the Monte Carlo SD of
+the estimator under the null in place of the estimated SE), the feasible
+test's size under the null, and the coverage of its confidence interval for
+the per-graph estimand (METHODS.md §4.6).  Replicates on one graph are not
+independent, so every Monte Carlo standard error is clustered by graph.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import platform
+from dataclasses import asdict, dataclass, field, replace
+from typing import Callable, Sequence
+
+import numpy as np
+import scipy as sp
+import scipy.stats
+
+from designcalc._version import __version__
+from designcalc.engine import STREAM_LAYOUT_VERSION, DesignPoint, EngineProgress, GraphDraws, design_points, simulate_graph
+from designcalc.scenario import Scenario
+
+__all__ = ["PowerRecord", "PowerResult", "simulate_power", "summarise_design_point", "clustered_mean_se", "critical_value"]
+
+CAUTIONS = (
+    "Simulated power rests on the assumed network, outcome and measurement models; "
+    "if they are wrong, so are these numbers.",
+    "Ethics review, informed consent and local rules govern the study; this tool does not replace them.",
+    "Have a qualified statistician review the design before fieldwork.",
+)
+
+
+def critical_value(alpha: float, alternative: str) -> float:
+    """z quantile of the Wald test: z_{1 - alpha/2} two-sided, z_{1 - alpha} one-sided."""
+    return float(sp.stats.norm.ppf(1 - alpha / 2 if alternative == "two-sided" else 1 - alpha))
+
+
+def _reject(statistic: np.ndarray, z: float, alternative: str) -> np.ndarray:
+    if alternative == "two-sided":
+        return np.abs(statistic) > z
+    if alternative == "greater":
+        return statistic > z
+    return statistic < -z
+
+
+def clustered_mean_se(values: np.ndarray) -> tuple[float, float]:
+    """Mean of a (graphs, assignments) array and its standard error clustered by graph.
+
+    Var(mean) = sum_g (sum_b (x_gb - mean))^2 / R^2 over the R finite entries
+    (the cluster-robust variance of a mean; Morris, White & Crowther 2019,
+    Stat. Med. 38:2074-2102, for Monte Carlo SEs in general).  With a single
+    graph the SE is NaN: between-graph variation cannot be estimated.
+    """
+    ok = np.isfinite(values)
+    count = int(ok.sum())
+    if count == 0:
+        return float("nan"), float("nan")
+    mean = float(values[ok].sum() / count)
+    centred = np.where(ok, values - mean, 0.0)
+    groups = centred.sum(axis=1)
+    if values.shape[0] < 2:
+        return mean, float("nan")
+    g = values.shape[0]
+    # Small-sample factor g / (g - 1), as in the usual cluster-robust variance.
+    variance = (groups @ groups) / count**2 * g / (g - 1)
+    return mean, float(np.sqrt(variance))
+
+
+@dataclass(frozen=True)
+class PowerRecord:
+    """One design point x estimand x estimator, every Monte Carlo number with its error."""
+
+    estimand: str
+    estimator: str
+    variance_estimator: str
+    units: int
+    treatment_probability: float
+    true_effect: float
+    true_effect_spread: float
+    mean_estimate: float
+    mean_estimate_mc_se: float
+    bias: float
+    bias_mc_se: float
+    sd: float
+    rmse: float
+    mean_standard_error: float
+    power: float
+    power_mc_se: float
+    oracle_power: float
+    oracle_power_mc_se: float
+    size: float
+    size_mc_se: float
+    coverage: float
+    coverage_mc_se: float
+    null_sd: float
+    replicates: int
+    graphs: int
+    failed_replicates: int
+    flags: tuple[str, ...] = ()
+
+    def to_dict(self) -> dict[str, object]:
+        d = asdict(self)
+        d["flags"] = list(self.flags)
+        return d
+
+
+@dataclass(frozen=True)
+class PowerResult:
+    """All records of a power run, its provenance, warnings and whether it was cut short."""
+
+    scenario_name: str
+    records: tuple[PowerRecord, ...]
+    provenance: dict[str, object]
+    warnings: tuple[str, ...] = ()
+    partial: bool = False
+    cautions: tuple[str, ...] = CAUTIONS
+
+    def to_dict(self) -> dict[str, object]:
+        return {
+            "scenario": self.scenario_name,
+            "partial": self.partial,
+            "provenance": self.provenance,
+            "warnings": list(self.warnings),
+            "cautions": list(self.cautions),
+            "results": [r.to_dict() for r in self.records],
+        }
+
+    def select(self, **criteria: object) -> list[PowerRecord]:
+        """Records whose fields equal the given values, e.g. ``select(estimand="direct")``."""
+        return [r for r in self.records if all(getattr(r, k) == v for k, v in criteria.items())]
+
+
+def summarise_design_point(scenario: Scenario, point: DesignPoint, draws: Sequence[GraphDraws]) -> list[PowerRecord]:
+    """Summarise the graphs of one design point into records (see module docstring)."""
+    alpha = scenario.design.significance_level
+    alternative = scenario.design.alternative
+    z = critical_value(alpha, alternative)
+    z_ci = critical_value(alpha, "two-sided")
+    target = scenario.design.target_power
+    records = []
+    for key in draws[0].estimates:
+        estimand, estimator, variance = key
+        est = np.stack([d.estimates[key] for d in draws])
+        se = np.stack([d.standard_errors[key] for d in draws])
+        nest = np.stack([d.null_estimates[key] for d in draws])
+        nse = np.stack([d.null_standard_errors[key] for d in draws])
+        truth = np.array([d.estimands.value(estimand) for d in draws])[:, None]
+        valid = np.isfinite(est) & np.isfinite(se)
+        nvalid = np.isfinite(nest) & np.isfinite(nse)
+
+        def rate(mask: np.ndarray, ok: np.ndarray) -> tuple[float, float]:
+            return clustered_mean_se(np.where(ok, mask.astype(float), np.nan))
+
+        mean_est, mean_est_se = clustered_mean_se(np.where(valid, est, np.nan))
+        error = np.where(valid, est - truth, np.nan)
+        bias, bias_se = clustered_mean_se(error)
+        sd = float(np.nanstd(np.where(valid, est, np.nan), ddof=1)) if valid.sum() > 1 else float("nan")
+        rmse = float(np.sqrt(np.nanmean(error**2))) if valid.any() else float("nan")
+        with np.errstate(divide="ignore", invalid="ignore"):
+            power, power_se = rate(_reject(est / se, z, alternative), valid)
+            size, size_se = rate(_reject(nest / nse, z, alternative), nvalid)
+            covered = np.abs(est - truth) <= z_ci * se
+        coverage, coverage_se = rate(covered, valid)
+        null_values = np.where(nvalid, nest, np.nan)
+        null_sd = float(np.nanstd(null_values, ddof=1)) if nvalid.sum() > 1 else float("nan")
+        with np.errstate(divide="ignore", invalid="ignore"):
+            # Oracle test: the estimator's own null SD replaces the estimated SE.
+            oracle, oracle_se = rate(_reject(est / null_sd, z, alternative), valid)
+        flags = []
+        low, high = 0.6 * alpha, 1.4 * alpha  # [0.03, 0.07] at alpha = 0.05
+        if np.isfinite(size) and not low <= size <= high:
+            flags.append(f"size {size:.3f} outside [{low:.3f}, {high:.3f}]")
+        if np.isfinite(power_se) and abs(power - target) < 2 * power_se:
+            flags.append("Monte Carlo error too large to tell power from the target")
+        if valid.sum() < est.size:
+            flags.append(f"{est.size - int(valid.sum())} replicates had no estimate (an empty arm)")
+        truth_values = truth.ravel()
+        records.append(
+            PowerRecord(
+                estimand=estimand,
+                estimator=estimator,
+                variance_estimator=variance,
+                units=point.units,
+                treatment_probability=point.treatment_probability,
+                true_effect=float(truth_values.mean()),
+                true_effect_spread=float(truth_values.std(ddof=1)) if truth_values.size > 1 else 0.0,
+                mean_estimate=mean_est,
+                mean_estimate_mc_se=mean_est_se,
+                bias=bias,
+                bias_mc_se=bias_se,
+                sd=sd,
+                rmse=rmse,
+                mean_standard_error=float(np.nanmean(np.where(valid, se, np.nan))) if valid.any() else float("nan"),
+                power=power,
+                power_mc_se=power_se,
+                oracle_power=oracle,
+                oracle_power_mc_se=oracle_se,
+                size=size,
+                size_mc_se=size_se,
+                coverage=coverage,
+                coverage_mc_se=coverage_se,
+                null_sd=null_sd,
+                replicates=int(valid.sum()),
+                graphs=len(draws),
+                failed_replicates=int(est.size - valid.sum()),
+                flags=tuple(flags),
+            )
+        )
+    return records
+
+
+def provenance(scenario: Scenario) -> dict[str, object]:
+    """What a reviewer needs to reproduce the numbers."""
+    import networkx
+
+    return {
+        "tool": "designcalc",
+        "tool_version": __version__,
+        "scenario_file": scenario.source,
+        "scenario_sha256": scenario.sha256,
+        "seed_entropy": scenario.simulation.seed,
+        "random_stream_layout_version": STREAM_LAYOUT_VERSION,
+        "graphs_per_design_point": scenario.simulation.graphs,
+        "assignments_per_graph": scenario.simulation.assignments_per_graph,
+        "replicates_per_design_point": scenario.simulation.replicates,
+        "python": platform.python_version(),
+        "numpy": np.__version__,
+        "scipy": sp.__version__,
+        "networkx": networkx.__version__,
+        "utc_time": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+    }
+
+
+def _override(scenario: Scenario, units: Sequence[int] | None, probabilities: Sequence[float] | None, graphs: int | None, assignments_per_graph: int | None, seed: int | None) -> Scenario:
+    pop = replace(scenario.population, units=tuple(sorted(units))) if units else scenario.population
+    design = replace(scenario.design, treatment_probabilities=tuple(sorted(probabilities))) if probabilities else scenario.design
+    sim = scenario.simulation
+    if graphs is not None:
+        sim = replace(sim, graphs=graphs)
+    if assignments_per_graph is not None:
+        sim = replace(sim, assignments_per_graph=assignments_per_graph)
+    if seed is not None:
+        sim = replace(sim, seed=seed)
+    return replace(scenario, population=pop, design=design, simulation=sim)
+
+
+def simulate_power(
+    scenario: Scenario,
+    *,
+    units: Sequence[int] | None = None,
+    treatment_probabilities: Sequence[float] | None = None,
+    graphs: int | None = None,
+    assignments_per_graph: int | None = None,
+    seed: int | None = None,
+    batch_size: int = 16,
+    progress: Callable[[EngineProgress], None] | None = None,
+) -> PowerResult:
+    """Simulate the power of every planned estimator at every design point.
+
+    Parameters
+    ----------
+    scenario
+        A validated scenario (``load_scenario``).
+    units, treatment_probabilities, graphs, assignments_per_graph, seed
+        Optional overrides of the scenario's values (validate them first;
+        the command line does).
+    batch_size
+        Assignment columns processed at once; a speed knob that never changes
+        the numbers.
+    progress
+        Called after every finished graph with an ``EngineProgress``.
+
+    Returns
+    -------
+    PowerResult
+        Interrupted with Ctrl-C, it holds every design point whose graphs all
+        finished and ``partial=True``.
+
+    Examples
+    --------
+    >>> from pathlib import Path
+    >>> from designcalc import load_scenario, simulate_power
+    >>> s = load_scenario(Path(__file__).parents[1] / "scenarios" / "lake_orrin_savings.toml")
+    >>> result = simulate_power(s, units=[300], treatment_probabilities=[0.5], graphs=2, assignments_per_graph=4)
+    >>> result.select(estimand="direct", estimator="hajek", variance_estimator="neyman")[0].replicates
+    8
+    """
+    import time
+
+    scenario = _override(scenario, units, treatment_probabilities, graphs, assignments_per_graph, seed)
+    points = design_points(scenario)
+    total = len(points) * scenario.simulation.graphs
+    started = time.perf_counter()
+    finished = 0
+    records: list[PowerRecord] = []
+    warnings: list[str] = []
+    partial = False
+    try:
+        for point in points:
+            draws = []
+            for g in range(scenario.simulation.graphs):
+                draws.append(simulate_graph(scenario, point, g, batch_size=batch_size))
+                finished += 1
+                if progress is not None:
+                    progress(EngineProgress(finished, total, time.perf_counter() - started))
+            records.extend(summarise_design_point(scenario, point, draws))
+            warnings.extend(_point_warnings(scenario, point, draws))
+    except KeyboardInterrupt:
+        partial = True
+    return PowerResult(scenario.name, tuple(records), provenance(scenario), tuple(warnings), partial)
+
+
+def _point_warnings(scenario: Scenario, point: DesignPoint, draws: Sequence[GraphDraws]) -> list[str]:
+    out = []
+    where = f"n = {point.units}, pi = {point.treatment_probability:g}"
+    if "pc_balancing_corrected" in scenario.estimators.spillover:
+        low = min(d.min_shrinkage for d in draws)
+        if low < 0.5:
+            out.append(f"{where}: the corrected PC-balancing estimator divides by r_j as small as {low:.2f} (< 0.5); its variance may be large")
+    mean_degree = float(np.mean([d.mean_degree for d in draws]))
+    if mean_degree**2 / point.units > 1:
+        out.append(f"{where}: mean degree^2 / n = {mean_degree**2 / point.units:.2f} > 1; uncentred HT spillover estimates are unreliable here (METHODS.md §3.2)")
+    isolated = float(np.mean([d.share_isolated for d in draws]))
+    if isolated > 0.05:
+        out.append(f"{where}: {isolated:.1%} of units are isolated; they carry no spillover information")
+    return out
