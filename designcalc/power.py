@@ -173,7 +173,7 @@ def summarise_design_point(scenario: Scenario, point: DesignPoint, draws: Sequen
         flags = []
         low, high = 0.6 * alpha, 1.4 * alpha  # [0.03, 0.07] at alpha = 0.05
         if np.isfinite(size) and not low <= size <= high:
-            flags.append(f"size {size:.3f} outside [{low:.3f}, {high:.3f}]")
+            flags.append(f"size {size:.3f} (MC se {size_se:.3f}) outside [{low:.3f}, {high:.3f}]")
         if np.isfinite(power_se) and abs(power - target) < 2 * power_se:
             flags.append("Monte Carlo error too large to tell power from the target")
         if valid.sum() < est.size:
@@ -304,14 +304,31 @@ def simulate_power(
             draws = []
             for g in range(scenario.simulation.graphs):
                 draws.append(simulate_graph(scenario, point, g, batch_size=batch_size))
+                if g == scenario.simulation.graphs - 1:
+                    # Summarise before reporting progress, so that Ctrl-C in the
+                    # callback after a point's last graph keeps that point.
+                    records.extend(summarise_design_point(scenario, point, draws))
+                    warnings.extend(_point_warnings(scenario, point, draws))
                 finished += 1
                 if progress is not None:
                     progress(EngineProgress(finished, total, time.perf_counter() - started))
-            records.extend(summarise_design_point(scenario, point, draws))
-            warnings.extend(_point_warnings(scenario, point, draws))
     except KeyboardInterrupt:
         partial = True
+    warnings.extend(_scenario_warnings(scenario))
     return PowerResult(scenario.name, tuple(records), provenance(scenario), tuple(warnings), partial)
+
+
+def _scenario_warnings(scenario: Scenario) -> list[str]:
+    out = []
+    outcome = scenario.outcome
+    if "exposure_regression" in scenario.estimators.spillover:
+        out.append(
+            "exposure_regression: OLS of y on own treatment and treated-neighbour share targets the spillover only "
+            "when it is linear with no interaction"
+            + ("" if outcome.spillover_shape == "linear" and outcome.interaction == 0 else " (not so here: expect bias)")
+            + "; its HC1 standard error ignores that neighbours share treated friends, so check its size"
+        )
+    return out
 
 
 def _point_warnings(scenario: Scenario, point: DesignPoint, draws: Sequence[GraphDraws]) -> list[str]:

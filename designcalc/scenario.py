@@ -556,7 +556,7 @@ def load_scenario(path: str | Path) -> Scenario:
     try:
         raw = path.read_bytes()
     except FileNotFoundError:
-        raise ScenarioError("no such file", file=str(path), hint="check the path; `designcalc new` writes a starter scenario") from None
+        raise ScenarioError("no such file", file=str(path), hint="check the path; the demo scenarios in scenarios/ are a starting point") from None
     except IsADirectoryError:
         raise ScenarioError("is a folder, not a scenario file", file=str(path)) from None
     except OSError as exc:
