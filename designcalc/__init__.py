@@ -19,6 +19,8 @@ from designcalc.errors import DesignCalcError, ExpressionError, ModelError, Scen
 from designcalc.scenario import Scenario, load_scenario, parse_scenario
 from designcalc.diagnostics import ScenarioCheck, check_scenario
 from designcalc.power import PowerRecord, PowerResult, simulate_power
+from designcalc.mde import MdeRecord, MdeResult, minimum_detectable_effects
+from designcalc.sample_size import SizePoint, SizeRecord, SizeResult, required_sample_size
 
 __all__ = [
     "__version__",
@@ -34,4 +36,11 @@ __all__ = [
     "PowerRecord",
     "PowerResult",
     "simulate_power",
+    "MdeRecord",
+    "MdeResult",
+    "minimum_detectable_effects",
+    "SizePoint",
+    "SizeRecord",
+    "SizeResult",
+    "required_sample_size",
 ]

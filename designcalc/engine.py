@@ -23,11 +23,12 @@ which estimators are planned.
 from __future__ import annotations
 
 from dataclasses import dataclass, field
-from typing import Callable
+from typing import Callable, Sequence
 
 import numpy as np
 
-from designcalc.estimands import Estimands, exact_estimands
+from designcalc.estimands import Estimands, ExposureMoments, estimands_from_moments, exact_estimands, exposure_moments
+from designcalc.errors import ModelError
 from designcalc.estimators import (
     EstimateBatch,
     GraphPreparation,
@@ -50,12 +51,23 @@ __all__ = [
     "GraphDraws",
     "EngineProgress",
     "simulate_graph",
+    "Run",
+    "RunDraws",
+    "power_runs",
+    "planned_keys",
+    "dropped_keys",
+    "null_label",
+    "ALTERNATIVE",
     "simulate_design_point",
     "design_points",
+    "GraphCache",
+    "control_variance",
+    "TWO_HOP_MAX_UNITS",
 ]
 
 STREAM_LAYOUT_VERSION = 1
 ESTIMANDS = ("direct", "spillover", "total")
+TWO_HOP_MAX_UNITS = 4000  # prepare_graph's default limit for the eigen-clipped two-hop matrix
 _PROBABILITY_KEY_SCALE = 1_000_000_000
 _VARIANCE_OF_SPILLOVER = {
     "centred_ht": "plug_in",
@@ -80,20 +92,106 @@ class EngineProgress:
     elapsed_seconds: float
 
 
+@dataclass(frozen=True)
+class Run:
+    """One outcome model simulated on every graph of a design point.
+
+    The power table runs the scenario's model (``"alternative"``) and one
+    null per estimand; the solvers run nulls and models with a rescaled
+    effect.  ``keys`` restricts the estimators computed (``None``: every
+    planned one for ``estimands``).
+    """
+
+    label: str
+    model: OutcomeModel
+    estimands: tuple[str, ...]
+    keys: frozenset[tuple[str, str, str]] | None = None
+
+
 @dataclass(eq=False)
-class GraphDraws:
-    """Everything one graph contributes: per estimator, estimates under the model and its null."""
+class RunDraws:
+    """What one run gives on one graph: its exact estimands, estimates and SEs per key."""
 
     estimands: Estimands
-    null_estimands: dict[str, Estimands]
     estimates: dict[tuple[str, str, str], np.ndarray] = field(default_factory=dict)
     standard_errors: dict[tuple[str, str, str], np.ndarray] = field(default_factory=dict)
-    null_estimates: dict[tuple[str, str, str], np.ndarray] = field(default_factory=dict)
-    null_standard_errors: dict[tuple[str, str, str], np.ndarray] = field(default_factory=dict)
+
+
+@dataclass(eq=False)
+class GraphDraws:
+    """Everything one graph contributes, per run, plus facts about the graph."""
+
+    runs: dict[str, RunDraws]
     mean_degree: float = 0.0
     share_isolated: float = 0.0
     n_eigenvectors: int = 0
     min_shrinkage: float = 1.0
+    control_variance: float = float("nan")
+    # Kept only on request (keep_units=True): lets a solver compute exact
+    # estimands of other outcome models on this graph without resampling it.
+    degrees: np.ndarray | None = None
+    theta: np.ndarray | None = None
+    failures: dict[str, str] = field(default_factory=dict)  # estimator -> why it is undefined on this graph
+
+    # Views used by the power table: the scenario's model and the null of each estimand.
+    @property
+    def estimands(self) -> Estimands:
+        return self.runs[ALTERNATIVE].estimands
+
+    @property
+    def estimates(self) -> dict[tuple[str, str, str], np.ndarray]:
+        return self.runs[ALTERNATIVE].estimates
+
+    @property
+    def standard_errors(self) -> dict[tuple[str, str, str], np.ndarray]:
+        return self.runs[ALTERNATIVE].standard_errors
+
+    @property
+    def null_estimands(self) -> dict[str, Estimands]:
+        return {e: self.runs[null_label(e)].estimands for e in ESTIMANDS if null_label(e) in self.runs}
+
+    @property
+    def null_estimates(self) -> dict[tuple[str, str, str], np.ndarray]:
+        return {k: v for e in ESTIMANDS if null_label(e) in self.runs for k, v in self.runs[null_label(e)].estimates.items()}
+
+    @property
+    def null_standard_errors(self) -> dict[tuple[str, str, str], np.ndarray]:
+        return {k: v for e in ESTIMANDS if null_label(e) in self.runs for k, v in self.runs[null_label(e)].standard_errors.items()}
+
+
+ALTERNATIVE = "alternative"
+
+
+def null_label(estimand: str) -> str:
+    return f"null:{estimand}"
+
+
+def power_runs(scenario: Scenario) -> list[Run]:
+    """The scenario's model plus the null of each estimand (the power table's runs)."""
+    model = scenario.outcome
+    return [Run(ALTERNATIVE, model, ESTIMANDS)] + [Run(null_label(e), model.null_for(e), (e,)) for e in ESTIMANDS]
+
+
+def planned_keys(scenario: Scenario, units: int) -> list[tuple[str, str, str]]:
+    """(estimand, estimator, variance estimator) of every planned test available at ``units``.
+
+    The eigen-clipped two-hop variance needs a dense n x n eigendecomposition,
+    so it is left out above ``TWO_HOP_MAX_UNITS`` (``two_hop_psd`` is not).
+    """
+    plan = scenario.estimators
+    variances = [v for v in plan.direct_variance if v != "two_hop" or units <= TWO_HOP_MAX_UNITS]
+    keys = [("direct", d, v) for d in plan.direct for v in variances]
+    keys += [("spillover", s, _VARIANCE_OF_SPILLOVER[s]) for s in plan.spillover]
+    keys += [("total", f"{plan.direct[0]}+{s}", "linearised") for s in plan.spillover]
+    return keys
+
+
+def dropped_keys(scenario: Scenario, units: int) -> list[tuple[str, str, str]]:
+    """Planned tests not available at ``units`` (see ``planned_keys``)."""
+    plan = scenario.estimators
+    if "two_hop" not in plan.direct_variance or units <= TWO_HOP_MAX_UNITS:
+        return []
+    return [("direct", d, "two_hop") for d in plan.direct]
 
 
 def design_points(scenario: Scenario) -> list[DesignPoint]:
@@ -125,51 +223,89 @@ def _outcomes(model: OutcomeModel, theta: np.ndarray, W: np.ndarray, X: np.ndarr
 
 
 def _run_estimators(
-    scenario: Scenario, prep: GraphPreparation, W: np.ndarray, Y: np.ndarray, pi: float, want: tuple[str, ...]
+    scenario: Scenario,
+    prep: GraphPreparation,
+    W: np.ndarray,
+    Y: np.ndarray,
+    pi: float,
+    keys: Sequence[tuple[str, str, str]],
+    failures: dict[str, str] | None = None,
 ) -> dict[tuple[str, str, str], EstimateBatch]:
+    """The estimates of ``keys`` on one assignment batch; each estimator runs at most once.
+
+    A spillover estimator undefined on the graph gives NaN and its reason in ``failures``.
+    """
+    failures = {} if failures is None else failures
     plan = scenario.estimators
-    out: dict[tuple[str, str, str], EstimateBatch] = {}
-    direct: dict[str, EstimateBatch] = {}
-    if "direct" in want or "total" in want:
-        for name in plan.direct:
-            for variance in plan.direct_variance:
-                if name == "hajek":
-                    batch = estimate_direct_hajek(prep, W, Y, treatment_probability=pi, variance=variance)
-                else:
-                    batch = estimate_direct_ht(prep, W, Y, treatment_probability=pi, centre=plan.centre, variance=variance)
-                if "direct" in want:
-                    out[("direct", name, variance)] = batch
-                direct.setdefault(name, batch)
-    spill: dict[str, EstimateBatch] = {}
-    if "spillover" in want or "total" in want:
-        for name in plan.spillover:
-            if name == "centred_ht":
-                batch = estimate_spillover_ht(prep, W, Y, treatment_probability=pi, centre=plan.centre)
-            elif name == "pc_balancing":
-                batch = estimate_spillover_pc(prep, W, Y, treatment_probability=pi)
-            elif name == "pc_balancing_corrected":
-                batch = estimate_spillover_pc_corrected(prep, W, Y, treatment_probability=pi)
+    cache: dict[tuple[str, str], EstimateBatch] = {}
+
+    def direct(name: str, variance: str) -> EstimateBatch:
+        if (name, variance) not in cache:
+            if name == "hajek":
+                cache[name, variance] = estimate_direct_hajek(prep, W, Y, treatment_probability=pi, variance=variance)
             else:
-                batch = estimate_spillover_exposure_regression(prep, W, Y, treatment_probability=pi)
-            if "spillover" in want:
-                out[("spillover", name, _VARIANCE_OF_SPILLOVER[name])] = batch
-            spill[name] = batch
-    if "total" in want:
-        # The total pairs the first planned direct estimator with each spillover estimator.
-        first = direct[plan.direct[0]]
-        for name, batch in spill.items():
-            total = combine_total(first, batch)
-            out[("total", f"{plan.direct[0]}+{name}", "linearised")] = total
+                cache[name, variance] = estimate_direct_ht(prep, W, Y, treatment_probability=pi, centre=plan.centre, variance=variance)
+        return cache[name, variance]
+
+    def spillover(name: str) -> EstimateBatch:
+        if (name, "") not in cache:
+            try:
+                cache[name, ""] = _spillover_batch(name)
+            except ModelError as exc:
+                # Undefined on this graph (e.g. r_j = 0 for the corrected PC
+                # estimator): no estimate, counted as failed replicates.
+                failures[name] = str(exc)
+                B = W.shape[1]
+                nan = np.full(B, np.nan)
+                cache[name, ""] = EstimateBatch(name, _VARIANCE_OF_SPILLOVER[name], nan, nan.copy(), np.full(W.shape, np.nan))
+        return cache[name, ""]
+
+    def _spillover_batch(name: str) -> EstimateBatch:
+        if name == "centred_ht":
+            return estimate_spillover_ht(prep, W, Y, treatment_probability=pi, centre=plan.centre)
+        if name == "pc_balancing":
+            return estimate_spillover_pc(prep, W, Y, treatment_probability=pi)
+        if name == "pc_balancing_corrected":
+            return estimate_spillover_pc_corrected(prep, W, Y, treatment_probability=pi)
+        return estimate_spillover_exposure_regression(prep, W, Y, treatment_probability=pi)
+
+    out: dict[tuple[str, str, str], EstimateBatch] = {}
+    for key in keys:
+        estimand, name, variance = key
+        if estimand == "direct":
+            out[key] = direct(name, variance)
+        elif estimand == "spillover":
+            out[key] = spillover(name)
+        else:
+            # The total pairs the first planned direct estimator (with its first
+            # variance estimator) with a spillover estimator.
+            first, second = name.split("+", 1)
+            out[key] = combine_total(direct(first, plan.direct_variance[0]), spillover(second))
     return out
 
 
-def simulate_graph(scenario: Scenario, point: DesignPoint, graph_index: int, *, batch_size: int = 16) -> GraphDraws:
-    """Simulate one graph of a design point with all its assignments.
+@dataclass(eq=False)
+class _PreparedGraph:
+    """A graph with its estimator preparation, assignments and noise: reusable across runs."""
 
-    ``batch_size`` (columns processed at once) is a speed knob only: every
-    random number is drawn before batching, and the estimators reduce each
-    column on its own.
-    """
+    net: object
+    theta: np.ndarray
+    prep: GraphPreparation
+    W_all: np.ndarray
+    noise_all: np.ndarray
+    moments: ExposureMoments | None = None
+
+
+def _estimands(g: _PreparedGraph, model: OutcomeModel, pi: float) -> Estimands:
+    """Exact estimands of ``model`` on the graph; O(1) per model for continuous outcomes."""
+    if model.kind != "continuous":
+        return exact_estimands(g.net.degrees, g.theta, model, pi)
+    if g.moments is None or g.moments.shape_key != (model.spillover_shape, float(model.saturation_rate), float(model.threshold)):
+        g.moments = exposure_moments(g.net.degrees, g.theta, model, pi)
+    return estimands_from_moments(g.moments, model)
+
+
+def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int) -> _PreparedGraph:
     entropy = scenario.simulation.seed
     n, pi = point.units, point.treatment_probability
     types_rng, graph_rng = _graph_streams(entropy, n, graph_index)
@@ -177,51 +313,117 @@ def simulate_graph(scenario: Scenario, point: DesignPoint, graph_index: int, *, 
     if scenario.network.kind == "kernel":
         bounds = scenario.network.cell_bounds(kernel_grid_cells(n))
     net = sample_network(scenario.network, scenario.density, n, types_rng=types_rng, graph_rng=graph_rng, cell_bounds=bounds)
-    A = net.adjacency
     degrees = net.degrees
-    outcome = scenario.outcome
-    theta = outcome.type_values(net.types, net.blocks)
+    theta = scenario.outcome.type_values(net.types, net.blocks)
     prep = prepare_graph(
-        A,
+        net.adjacency,
         n_eigenvectors=scenario.estimators.eigenvectors,
         mean_degree_hint=float(degrees.mean()) if n else 0.0,
-        two_hop="two_hop" in scenario.estimators.direct_variance,
+        two_hop="two_hop" in scenario.estimators.direct_variance and n <= TWO_HOP_MAX_UNITS,
     )
     assign_rng, noise_rng = _assignment_streams(entropy, point, graph_index)
     B = scenario.simulation.assignments_per_graph
     W_all = (assign_rng.random((n, B)) < pi).astype(float)
-    if outcome.kind == "continuous":
+    if scenario.outcome.kind == "continuous":
         noise_all = noise_rng.standard_normal((n, B))
     else:
-        noise_all = noise_rng.random((n, B))
-    nulls = {e: outcome.null_for(e) for e in ESTIMANDS}
+        noise_all = noise_rng.random((n, B))  # uniforms, thresholded at the mean
+    return _PreparedGraph(net, theta, prep, W_all, noise_all)
+
+
+def control_variance(model: OutcomeModel, theta: np.ndarray) -> float:
+    """Variance of the outcome across units when nobody is treated (for effects in SD units)."""
+    mean = model.mean_outcome(theta, np.zeros_like(theta), np.zeros_like(theta))
+    if model.kind == "continuous":
+        return float(np.var(mean) + model.noise_sd**2)
+    return float(np.var(mean) + np.mean(mean * (1.0 - mean)))
+
+
+class GraphCache:
+    """Prepared graphs of one design point kept in memory between passes, within a byte budget.
+
+    The solvers simulate the same graphs several times (null pass, then runs
+    at candidate effects); resampling would give identical graphs, so keeping
+    them only saves time and never changes a number.
+    """
+
+    def __init__(self, max_bytes: int = 400_000_000) -> None:
+        self.max_bytes = max_bytes
+        self._used = 0
+        self._items: dict[tuple[DesignPoint, int], _PreparedGraph] = {}
+
+    def get(self, scenario: Scenario, point: DesignPoint, graph_index: int) -> _PreparedGraph:
+        key = (point, graph_index)
+        if key in self._items:
+            return self._items[key]
+        prepared = _prepare(scenario, point, graph_index)
+        size = prepared.W_all.nbytes + prepared.noise_all.nbytes + 8 * prepared.net.adjacency.nnz * 2
+        if self._used + size <= self.max_bytes:
+            self._items[key] = prepared
+            self._used += size
+        return prepared
+
+    def forget(self, point: DesignPoint) -> None:
+        for key in [k for k in self._items if k[0] == point]:
+            item = self._items.pop(key)
+            self._used -= item.W_all.nbytes + item.noise_all.nbytes + 8 * item.net.adjacency.nnz * 2
+
+
+def simulate_graph(
+    scenario: Scenario,
+    point: DesignPoint,
+    graph_index: int,
+    *,
+    runs: Sequence[Run] | None = None,
+    batch_size: int = 16,
+    cache: GraphCache | None = None,
+    keep_units: bool = False,
+) -> GraphDraws:
+    """Simulate one graph of a design point with all its assignments, for every run.
+
+    ``runs`` defaults to ``power_runs(scenario)``.  Every run sees the same
+    graph, assignments and noise (common random numbers).  ``batch_size``
+    (columns processed at once) is a speed knob only: every random number is
+    drawn before batching, and the estimators reduce each column on its own.
+    """
+    runs = power_runs(scenario) if runs is None else runs
+    n, pi = point.units, point.treatment_probability
+    g = cache.get(scenario, point, graph_index) if cache is not None else _prepare(scenario, point, graph_index)
+    A, degrees = g.net.adjacency, g.net.degrees
+    available = planned_keys(scenario, n)
+    run_keys = {
+        run.label: [k for k in available if k[0] in run.estimands and (run.keys is None or k in run.keys)] for run in runs
+    }
     draws = GraphDraws(
-        estimands=exact_estimands(degrees, theta, outcome, pi),
-        null_estimands={e: exact_estimands(degrees, theta, m, pi) for e, m in nulls.items()},
+        runs={run.label: RunDraws(_estimands(g, run.model, pi)) for run in runs},
         mean_degree=float(degrees.mean()) if n else 0.0,
         share_isolated=float(np.mean(degrees == 0)) if n else 0.0,
-        n_eigenvectors=prep.n_eigenvectors,
-        min_shrinkage=prep.min_shrinkage,
+        n_eigenvectors=g.prep.n_eigenvectors,
+        min_shrinkage=g.prep.min_shrinkage,
+        control_variance=control_variance(scenario.outcome, g.theta),
+        degrees=degrees if keep_units else None,
+        theta=g.theta if keep_units else None,
     )
     safe_degrees = np.maximum(degrees, 1)[:, None]
-    chunks: dict[str, list] = {"est": [], "se": [], "nest": [], "nse": []}
+    B = g.W_all.shape[1]
+    chunks: dict[str, list[tuple[dict, dict]]] = {run.label: [] for run in runs}
     for start in range(0, B, batch_size):
-        W = W_all[:, start : start + batch_size]
-        noise = noise_all[:, start : start + batch_size]
+        W = g.W_all[:, start : start + batch_size]
+        noise = g.noise_all[:, start : start + batch_size]
         X = (A @ W) / safe_degrees
-        Y = _outcomes(outcome, theta, W, X, noise)
-        alt = _run_estimators(scenario, prep, W, Y, pi, ESTIMANDS)
-        null: dict[tuple[str, str, str], EstimateBatch] = {}
-        for estimand, model in nulls.items():
-            Y0 = _outcomes(model, theta, W, X, noise)
-            null.update({k: v for k, v in _run_estimators(scenario, prep, W, Y0, pi, (estimand,)).items() if k[0] == estimand})
-        chunks["est"].append({k: v.estimate for k, v in alt.items()})
-        chunks["se"].append({k: v.standard_error for k, v in alt.items()})
-        chunks["nest"].append({k: v.estimate for k, v in null.items()})
-        chunks["nse"].append({k: v.standard_error for k, v in null.items()})
-    for target, name in ((draws.estimates, "est"), (draws.standard_errors, "se"), (draws.null_estimates, "nest"), (draws.null_standard_errors, "nse")):
-        for key in chunks[name][0]:
-            target[key] = np.concatenate([c[key] for c in chunks[name]])
+        for run in runs:
+            if not run_keys[run.label]:
+                continue  # a run kept for its exact estimands only
+            Y = _outcomes(run.model, g.theta, W, X, noise)
+            batches = _run_estimators(scenario, g.prep, W, Y, pi, run_keys[run.label], draws.failures)
+            chunks[run.label].append(({k: v.estimate for k, v in batches.items()}, {k: v.standard_error for k, v in batches.items()}))
+    for run in runs:
+        if not run_keys[run.label]:
+            continue
+        target = draws.runs[run.label]
+        for key in run_keys[run.label]:
+            target.estimates[key] = np.concatenate([c[0][key] for c in chunks[run.label]])
+            target.standard_errors[key] = np.concatenate([c[1][key] for c in chunks[run.label]])
     return draws
 
 
@@ -229,16 +431,18 @@ def simulate_design_point(
     scenario: Scenario,
     point: DesignPoint,
     *,
+    runs: Sequence[Run] | None = None,
     batch_size: int = 16,
     progress: Callable[[], None] | None = None,
     graph_indices: range | None = None,
+    cache: GraphCache | None = None,
+    keep_units: bool = False,
 ) -> list[GraphDraws]:
     """All graphs of one design point, in graph order."""
     indices = graph_indices if graph_indices is not None else range(scenario.simulation.graphs)
     out = []
     for g in indices:
-        out.append(simulate_graph(scenario, point, g, batch_size=batch_size))
+        out.append(simulate_graph(scenario, point, g, runs=runs, batch_size=batch_size, cache=cache, keep_units=keep_units))
         if progress is not None:
             progress()
     return out
-

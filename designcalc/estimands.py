@@ -12,11 +12,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-import scipy.stats
+import scipy.special
 
 from designcalc.outcomes import OutcomeModel
 
-__all__ = ["Estimands", "exact_estimands", "mean_outcome_at"]
+__all__ = ["Estimands", "exact_estimands", "mean_outcome_at", "ExposureMoments", "exposure_moments", "estimands_from_moments"]
 
 # Units are processed in chunks so that a degree class never needs more than
 # this many cells of scratch memory at once.
@@ -62,6 +62,19 @@ def _degree_classes(degrees: np.ndarray) -> list[tuple[int, np.ndarray]]:
     values, starts = np.unique(sorted_deg, return_index=True)
     ends = np.append(starts[1:], sorted_deg.size)
     return [(int(d), order[s:e]) for d, s, e in zip(values, starts, ends)]
+
+
+def _binomial_pmf(size: int, p: float) -> np.ndarray:
+    """b(m; size, p) for m = 0..size, via log-gamma (scipy.stats.binom.pmf's per-call overhead dominated here)."""
+    m = np.arange(size + 1)
+    log_pmf = (
+        scipy.special.gammaln(size + 1)
+        - scipy.special.gammaln(m + 1)
+        - scipy.special.gammaln(size - m + 1)
+        + scipy.special.xlogy(m, p)
+        + scipy.special.xlog1py(size - m, -p)
+    )
+    return np.exp(log_pmf)
 
 
 def exact_estimands(
@@ -122,8 +135,8 @@ def exact_estimands(
             mean0[members] = f(theta[members], 0.0, 0.0)
             continue
         x = np.arange(d + 1) / d
-        pmf = scipy.stats.binom.pmf(np.arange(d + 1), d, pi)
-        pmf_minus = scipy.stats.binom.pmf(np.arange(d), d - 1, pi)
+        pmf = _binomial_pmf(d, pi)
+        pmf_minus = _binomial_pmf(d - 1, pi)
         rows = max(1, _CHUNK_CELLS // (d + 1))
         for start in range(0, members.size, rows):
             idx = members[start : start + rows]
@@ -156,3 +169,90 @@ def mean_outcome_at(
 ) -> float:
     """The mean outcome bar mu(pi) on a fixed graph (used to check total = d bar mu / d pi)."""
     return exact_estimands(degrees, theta, outcome, treatment_probability).mean_outcome
+
+
+@dataclass(frozen=True)
+class ExposureMoments:
+    """Graph-level binomial moments of the spillover shape, shared by every continuous model on a graph.
+
+    A continuous outcome is linear in its coefficients,
+    f = baseline + theta + tau w + beta s(x) + gamma w s(x), so every
+    estimand is a linear combination of the means below; the power table
+    and the solvers evaluate many models (nulls, rescaled effects) on one
+    graph, and this makes each evaluation O(1) instead of O(n + edges).
+    """
+
+    treatment_probability: float
+    shape_key: tuple[str, float, float]
+    mean_theta: float
+    mean_exposure_shape: float  # mean_j E s(M_j / N_j), M_j ~ Binomial(N_j, pi); isolates s(0)
+    mean_degree_increment: float  # mean_j N_j E[s((m + 1)/N_j) - s(m/N_j)], m ~ Binomial(N_j - 1, pi)
+    mean_full_shape: float  # mean_j s(1) for linked units, s(0) for isolates
+    shape_at_zero: float
+    share_isolated: float
+
+
+def _shape_key(outcome: OutcomeModel) -> tuple[str, float, float]:
+    return (outcome.spillover_shape, float(outcome.saturation_rate), float(outcome.threshold))
+
+
+def exposure_moments(degrees: np.ndarray, theta: np.ndarray, outcome: OutcomeModel, treatment_probability: float) -> ExposureMoments:
+    """The moments of ``ExposureMoments`` on one graph, by binomial sums per degree class."""
+    from designcalc.outcomes import spillover_shape_value
+
+    degrees = np.asarray(degrees, dtype=np.int64)
+    pi = float(treatment_probability)
+    key = _shape_key(outcome)
+
+    def s(x: np.ndarray) -> np.ndarray:
+        return spillover_shape_value(key[0], np.asarray(x, dtype=float), rate=key[1], threshold=key[2])
+
+    n = degrees.size
+    s0 = float(s(np.array([0.0]))[0])
+    if n == 0:
+        return ExposureMoments(pi, key, 0.0, s0, 0.0, s0, s0, 0.0)
+    shape_sum = 0.0
+    increment_sum = 0.0
+    for d, members in _degree_classes(degrees):
+        if d == 0:
+            shape_sum += members.size * s0
+            continue
+        values = s(np.arange(d + 1) / d)
+        shape_sum += members.size * float(values @ _binomial_pmf(d, pi))
+        increment_sum += members.size * d * float(np.diff(values) @ _binomial_pmf(d - 1, pi))
+    isolated = float(np.mean(degrees == 0))
+    s1 = float(s(np.array([1.0]))[0])
+    return ExposureMoments(
+        treatment_probability=pi,
+        shape_key=key,
+        mean_theta=float(np.mean(theta)),
+        mean_exposure_shape=shape_sum / n,
+        mean_degree_increment=increment_sum / n,
+        mean_full_shape=(1 - isolated) * s1 + isolated * s0,
+        shape_at_zero=s0,
+        share_isolated=isolated,
+    )
+
+
+def estimands_from_moments(moments: ExposureMoments, outcome: OutcomeModel) -> Estimands:
+    """Exact estimands of a continuous model from its graph's moments (equal to ``exact_estimands``).
+
+    direct = tau + gamma E s; spillover = (beta + gamma pi) mean N D;
+    global = tau + (beta + gamma) mean s(x_full) - beta s(0).
+    """
+    if outcome.kind != "continuous" or _shape_key(outcome) != moments.shape_key:
+        raise ValueError("moments hold only for a continuous model with the same spillover shape")
+    pi = moments.treatment_probability
+    tau, beta, gamma = outcome.direct_effect, outcome.spillover_effect, outcome.interaction
+    es = moments.mean_exposure_shape
+    direct = tau + gamma * es
+    spillover = (beta + gamma * pi) * moments.mean_degree_increment
+    return Estimands(
+        treatment_probability=pi,
+        direct=direct,
+        spillover=spillover,
+        total=direct + spillover,
+        global_effect=tau + (beta + gamma) * moments.mean_full_shape - beta * moments.shape_at_zero,
+        mean_outcome=outcome.baseline + moments.mean_theta + tau * pi + beta * es + gamma * pi * es,
+        share_isolated=moments.share_isolated,
+    )

@@ -21,10 +21,29 @@ import scipy as sp
 import scipy.stats
 
 from designcalc._version import __version__
-from designcalc.engine import STREAM_LAYOUT_VERSION, DesignPoint, EngineProgress, GraphDraws, design_points, simulate_graph
+from designcalc.engine import (
+    STREAM_LAYOUT_VERSION,
+    DesignPoint,
+    EngineProgress,
+    GraphDraws,
+    design_points,
+    dropped_keys,
+    simulate_graph,
+)
+from designcalc.inference import critical_value, reference_distribution
 from designcalc.scenario import Scenario
 
-__all__ = ["PowerRecord", "PowerResult", "simulate_power", "summarise_design_point", "clustered_mean_se", "critical_value"]
+__all__ = [
+    "PowerRecord",
+    "PowerResult",
+    "simulate_power",
+    "summarise_design_point",
+    "clustered_mean_se",
+    "clustered_sd",
+    "critical_value",
+    "reject",
+    "stack_run",
+]
 
 CAUTIONS = (
     "Simulated power rests on the assumed network, outcome and measurement models; "
@@ -34,12 +53,7 @@ CAUTIONS = (
 )
 
 
-def critical_value(alpha: float, alternative: str) -> float:
-    """z quantile of the Wald test: z_{1 - alpha/2} two-sided, z_{1 - alpha} one-sided."""
-    return float(sp.stats.norm.ppf(1 - alpha / 2 if alternative == "two-sided" else 1 - alpha))
-
-
-def _reject(statistic: np.ndarray, z: float, alternative: str) -> np.ndarray:
+def reject(statistic: np.ndarray, z: float, alternative: str) -> np.ndarray:
     if alternative == "two-sided":
         return np.abs(statistic) > z
     if alternative == "greater":
@@ -68,6 +82,32 @@ def clustered_mean_se(values: np.ndarray) -> tuple[float, float]:
     # Small-sample factor g / (g - 1), as in the usual cluster-robust variance.
     variance = (groups @ groups) / count**2 * g / (g - 1)
     return mean, float(np.sqrt(variance))
+
+
+def clustered_sd(values: np.ndarray) -> tuple[float, float]:
+    """SD of a (graphs, assignments) array about its overall mean, with a graph-clustered MC error.
+
+    The variance is the mean of squared deviations (times R / (R - 1)); its
+    MC error is the clustered SE of that mean (``clustered_mean_se``), and
+    the SD's error follows by the delta method, se(SD) = se(Var) / (2 SD).
+    """
+    ok = np.isfinite(values)
+    count = int(ok.sum())
+    if count < 2:
+        return float("nan"), float("nan")
+    mean = values[ok].mean()
+    squares = np.where(ok, (values - mean) ** 2, np.nan) * count / (count - 1)
+    variance, variance_se = clustered_mean_se(squares)
+    sd = float(np.sqrt(variance))
+    return sd, float(variance_se / (2 * sd)) if sd > 0 else float("nan")
+
+
+def stack_run(draws: Sequence[GraphDraws], label: str, key: tuple[str, str, str]) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Estimates and SEs as (graphs, assignments) arrays and the per-graph true estimand, for one run and key."""
+    est = np.stack([d.runs[label].estimates[key] for d in draws])
+    se = np.stack([d.runs[label].standard_errors[key] for d in draws])
+    truth = np.array([d.runs[label].estimands.value(key[0]) for d in draws])
+    return est, se, truth
 
 
 @dataclass(frozen=True)
@@ -101,6 +141,7 @@ class PowerRecord:
     graphs: int
     failed_replicates: int
     flags: tuple[str, ...] = ()
+    reference_distribution: str = "normal"
 
     def to_dict(self) -> dict[str, object]:
         d = asdict(self)
@@ -138,12 +179,13 @@ def summarise_design_point(scenario: Scenario, point: DesignPoint, draws: Sequen
     """Summarise the graphs of one design point into records (see module docstring)."""
     alpha = scenario.design.significance_level
     alternative = scenario.design.alternative
-    z = critical_value(alpha, alternative)
-    z_ci = critical_value(alpha, "two-sided")
     target = scenario.design.target_power
     records = []
     for key in draws[0].estimates:
         estimand, estimator, variance = key
+        reference = reference_distribution(scenario.design.reference_distribution, estimand, estimator, point.units)
+        z = critical_value(alpha, alternative, reference.df)
+        z_ci = critical_value(alpha, "two-sided", reference.df)
         est = np.stack([d.estimates[key] for d in draws])
         se = np.stack([d.standard_errors[key] for d in draws])
         nest = np.stack([d.null_estimates[key] for d in draws])
@@ -161,15 +203,15 @@ def summarise_design_point(scenario: Scenario, point: DesignPoint, draws: Sequen
         sd = float(np.nanstd(np.where(valid, est, np.nan), ddof=1)) if valid.sum() > 1 else float("nan")
         rmse = float(np.sqrt(np.nanmean(error**2))) if valid.any() else float("nan")
         with np.errstate(divide="ignore", invalid="ignore"):
-            power, power_se = rate(_reject(est / se, z, alternative), valid)
-            size, size_se = rate(_reject(nest / nse, z, alternative), nvalid)
+            power, power_se = rate(reject(est / se, z, alternative), valid)
+            size, size_se = rate(reject(nest / nse, z, alternative), nvalid)
             covered = np.abs(est - truth) <= z_ci * se
         coverage, coverage_se = rate(covered, valid)
         null_values = np.where(nvalid, nest, np.nan)
         null_sd = float(np.nanstd(null_values, ddof=1)) if nvalid.sum() > 1 else float("nan")
         with np.errstate(divide="ignore", invalid="ignore"):
             # Oracle test: the estimator's own null SD replaces the estimated SE.
-            oracle, oracle_se = rate(_reject(est / null_sd, z, alternative), valid)
+            oracle, oracle_se = rate(reject(est / null_sd, z, alternative), valid)
         flags = []
         low, high = 0.6 * alpha, 1.4 * alpha  # [0.03, 0.07] at alpha = 0.05
         if np.isfinite(size) and not low <= size <= high:
@@ -177,7 +219,7 @@ def summarise_design_point(scenario: Scenario, point: DesignPoint, draws: Sequen
         if np.isfinite(power_se) and abs(power - target) < 2 * power_se:
             flags.append("Monte Carlo error too large to tell power from the target")
         if valid.sum() < est.size:
-            flags.append(f"{est.size - int(valid.sum())} replicates had no estimate (an empty arm)")
+            flags.append(f"{est.size - int(valid.sum())} replicates had no estimate (an empty arm, or the estimator undefined on the graph)")
         truth_values = truth.ravel()
         records.append(
             PowerRecord(
@@ -208,6 +250,7 @@ def summarise_design_point(scenario: Scenario, point: DesignPoint, draws: Sequen
                 graphs=len(draws),
                 failed_replicates=int(est.size - valid.sum()),
                 flags=tuple(flags),
+                reference_distribution=reference.name,
             )
         )
     return records
@@ -320,6 +363,13 @@ def simulate_power(
 
 def _scenario_warnings(scenario: Scenario) -> list[str]:
     out = []
+    skipped = sorted({n for n in scenario.population.units if dropped_keys(scenario, n)})
+    if skipped:
+        out.append(
+            "two_hop: the eigen-clipped two-hop variance needs a dense n x n eigendecomposition and is left out at "
+            + ", ".join(f"n = {n}" for n in skipped)
+            + "; two_hop_psd works at any size"
+        )
     outcome = scenario.outcome
     if "exposure_regression" in scenario.estimators.spillover:
         out.append(
@@ -341,6 +391,10 @@ def _point_warnings(scenario: Scenario, point: DesignPoint, draws: Sequence[Grap
     mean_degree = float(np.mean([d.mean_degree for d in draws]))
     if mean_degree**2 / point.units > 1:
         out.append(f"{where}: mean degree^2 / n = {mean_degree**2 / point.units:.2f} > 1; uncentred HT spillover estimates are unreliable here (METHODS.md §3.2)")
+    reasons = {name: why for d in draws for name, why in d.failures.items()}
+    for name, why in sorted(reasons.items()):
+        graphs_failed = sum(name in d.failures for d in draws)
+        out.append(f"{where}: {name} is undefined on {graphs_failed} of {len(draws)} graphs ({why})")
     isolated = float(np.mean([d.share_isolated for d in draws]))
     if isolated > 0.05:
         out.append(f"{where}: {isolated:.1%} of units are isolated; they carry no spillover information")

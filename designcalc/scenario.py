@@ -35,12 +35,14 @@ __all__ = [
     "DIRECT_VARIANCES",
     "SPILLOVER_ESTIMATORS",
     "ALTERNATIVES",
+    "REFERENCE_DISTRIBUTIONS",
 ]
 
 DIRECT_ESTIMATORS = ("hajek", "horvitz_thompson")
 DIRECT_VARIANCES = ("neyman", "two_hop", "two_hop_psd")
 SPILLOVER_ESTIMATORS = ("pc_balancing_corrected", "pc_balancing", "centred_ht", "exposure_regression")
 ALTERNATIVES = ("two-sided", "greater", "less")
+REFERENCE_DISTRIBUTIONS = ("auto", "normal")
 
 _MAX_UNITS = 2_000_000
 _MAX_REPLICATES = 10_000_000
@@ -48,9 +50,18 @@ _MAX_REPLICATES = 10_000_000
 
 @dataclass(frozen=True)
 class Population:
-    """One network of each planned size (clustered populations will sit beside it)."""
+    """One network of each planned size (clustered populations will sit beside it).
+
+    ``max_units`` bounds the search of ``designcalc size``; 0 means the
+    default, 16 times the largest planned size (at most the hard limit).
+    """
 
     units: tuple[int, ...]
+    max_units: int = 0
+
+    @property
+    def search_limit(self) -> int:
+        return self.max_units or min(16 * max(self.units), _MAX_UNITS)
 
 
 @dataclass(frozen=True)
@@ -61,6 +72,7 @@ class Design:
     significance_level: float = 0.05
     target_power: float = 0.8
     alternative: str = "two-sided"
+    reference_distribution: str = "auto"
 
 
 @dataclass(frozen=True)
@@ -81,6 +93,8 @@ class SimulationSettings:
     graphs: int = 40
     assignments_per_graph: int = 25
     seed: int = 1
+    relative_precision: float = 0.03
+    max_graphs: int = 1000
 
     @property
     def replicates(self) -> int:
@@ -293,16 +307,16 @@ def _range_text(low: float | None, high: float | None, low_open: bool, high_open
 # ---------------------------------------------------------------------------
 _TOP_KEYS = ("scenario", "population", "network", "outcome", "design", "estimators", "simulation")
 _SCENARIO_KEYS = ("name", "description")
-_POPULATION_KEYS = ("units",)
+_POPULATION_KEYS = ("units", "max_units")
 _NETWORK_KEYS = ("model", "block_shares", "block_affinity", "kernel", "degree_ratio", "length_scale", "floor", "amplitudes", "expression", "density")
 _DENSITY_KEYS = ("mean_degree", "reference_units", "growth_exponent")
 _OUTCOME_KEYS = (
     "kind", "baseline", "type_effect", "block_effects", "noise_sd", "direct_effect", "spillover_effect",
     "spillover_shape", "saturation_rate", "threshold", "interaction", "link", "exposure",
 )
-_DESIGN_KEYS = ("treatment_probability", "significance_level", "target_power", "alternative")
+_DESIGN_KEYS = ("treatment_probability", "significance_level", "target_power", "alternative", "reference_distribution")
 _ESTIMATOR_KEYS = ("direct", "direct_variance", "spillover", "centre", "eigenvectors")
-_SIMULATION_KEYS = ("graphs", "assignments_per_graph", "seed")
+_SIMULATION_KEYS = ("graphs", "assignments_per_graph", "seed", "relative_precision", "max_graphs")
 
 
 def _read_population(top: _Table) -> Population:
@@ -311,8 +325,11 @@ def _read_population(top: _Table) -> Population:
     units = t.number_list("units", low=4, high=_MAX_UNITS, integer=True)
     if len(set(units)) != len(units):
         raise t.error("units", "lists the same size twice", received=list(units))
+    max_units = t.number("max_units", 0, low=0, high=_MAX_UNITS, integer=True)
+    if max_units and max_units < max(units):
+        raise t.error("max_units", f"must be at least the largest planned size ({max(units)})", received=max_units)
     t.finish()
-    return Population(units=tuple(sorted(units)))
+    return Population(units=tuple(sorted(units)), max_units=max_units)
 
 
 def _wrap_model_error(t: _Table, key: str, build: Callable[[], Any]) -> Any:
@@ -444,8 +461,9 @@ def _read_design(top: _Table) -> Design:
     alpha = t.number("significance_level", 0.05, low=0, high=0.5, low_open=True, high_open=True)
     power = t.number("target_power", 0.8, low=0, high=1, low_open=True, high_open=True)
     alternative = t.choice("alternative", ALTERNATIVES, "two-sided")
+    reference = t.choice("reference_distribution", REFERENCE_DISTRIBUTIONS, "auto")
     t.finish()
-    return Design(tuple(sorted(probs)), alpha, power, alternative)
+    return Design(tuple(sorted(probs)), alpha, power, alternative, reference)
 
 
 def _read_estimators(top: _Table, outcome: OutcomeModel) -> EstimatorPlan:
@@ -478,8 +496,14 @@ def _read_simulation(top: _Table) -> SimulationSettings:
     seed = t.number("seed", 1, low=0, high=2**63 - 1, integer=True)
     if graphs * per_graph > _MAX_REPLICATES:
         raise t.error("graphs", f"graphs x assignments_per_graph must be at most {_MAX_REPLICATES:,}", received=graphs * per_graph)
+    precision = t.number("relative_precision", 0.03, low=0.001, high=0.5)
+    max_graphs = t.number("max_graphs", max(1000, graphs), low=2, high=1_000_000, integer=True)
+    if max_graphs < graphs:
+        raise t.error("max_graphs", f"must be at least graphs ({graphs})", received=max_graphs)
+    if max_graphs * per_graph > _MAX_REPLICATES:
+        raise t.error("max_graphs", f"max_graphs x assignments_per_graph must be at most {_MAX_REPLICATES:,}", received=max_graphs * per_graph)
     t.finish()
-    return SimulationSettings(graphs, per_graph, seed)
+    return SimulationSettings(graphs, per_graph, seed, precision, max_graphs)
 
 
 def parse_scenario(text: str, *, source: str = "<scenario>") -> Scenario:

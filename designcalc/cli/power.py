@@ -20,7 +20,7 @@ _CSV_FIELDS = (
     "estimand", "estimator", "variance_estimator", "units", "treatment_probability", "true_effect",
     "true_effect_spread", "mean_estimate", "bias", "bias_mc_se", "sd", "rmse", "mean_standard_error",
     "power", "power_mc_se", "oracle_power", "oracle_power_mc_se", "size", "size_mc_se", "coverage",
-    "coverage_mc_se", "replicates", "graphs", "flags",
+    "coverage_mc_se", "reference_distribution", "replicates", "graphs", "flags",
 )
 
 

@@ -1,0 +1,566 @@
+"""Required sample size: the number of units that gives each planned test its target power.
+
+No scaling law is assumed (METHODS.md §3.2, §4.6): under a density rule the
+SD of a spillover estimator may shrink like n^-1/2, more slowly, or not at
+all.  For every treatment probability and planned test:
+
+1. **Coarse grid.**  Simulate the scenario's model at sizes doubling from
+   the smallest planned size (halving when that already has the power), at
+   a few graphs each, until every test's simulated power brackets the
+   target, or ``population.max_units`` is reached, or the trend shows the
+   target cannot be reached (the signal-to-noise ratio stops growing).
+2. **Trend and proposal.**  Within the bracket, interpolate the SD and the
+   mean estimated SE on the log-log scale and the mean estimate linearly in
+   log n, predict the feasible test's power from the normal approximation,
+   and solve for the target.
+3. **Verify and refine.**  Simulate at the proposal; one probit-Newton step
+   in log n from the verified power gives the estimate, its 95% Monte Carlo
+   interval comes from the power's clustered MC error over the slope of the
+   power curve.  When the estimate moves beyond that interval the proposal
+   is replaced (staying inside the bracket, which the verified point
+   narrows) and simulated again; when the interval is wider than
+   ``simulation.relative_precision`` more graphs are added, up to
+   ``simulation.max_graphs``.
+
+Sizes are simulated at integers rounded to three significant figures above
+1000, so tests whose answers are close share simulations; every simulated
+point is reported.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import asdict, dataclass
+from typing import Callable, Sequence
+
+import numpy as np
+import scipy.stats
+
+from designcalc.engine import ALTERNATIVE, ESTIMANDS, DesignPoint, EngineProgress, GraphDraws, Run, planned_keys, simulate_graph
+from designcalc.inference import critical_value, reference_distribution
+from designcalc.power import CAUTIONS, clustered_mean_se, clustered_sd, provenance, reject, stack_run
+from designcalc.scenario import Scenario
+
+__all__ = ["SizePoint", "SizeRecord", "SizeResult", "required_sample_size", "MAX_ADJACENCY_ENTRIES"]
+
+MAX_ADJACENCY_ENTRIES = 40_000_000  # ~ 0.5 GB of sparse adjacency; larger sizes are not simulated
+_Z95 = 1.959963984540054
+_MAX_REFINE_STEPS = 12
+
+
+@dataclass(frozen=True)
+class SizePoint:
+    """One simulated size for one test: what the search saw there."""
+
+    units: int
+    power: float
+    power_mc_se: float
+    sd: float
+    mean_standard_error: float
+    mean_estimate: float
+    true_effect: float
+    replicates: int
+
+
+@dataclass(frozen=True)
+class SizeRecord:
+    """The required number of units for one planned test at one treatment probability."""
+
+    estimand: str
+    estimator: str
+    variance_estimator: str
+    treatment_probability: float
+    status: str  # "reached", "not reachable", "reached at the smallest size"
+    required_units: int | None
+    units_low: float
+    units_high: float
+    verified_units: int | None
+    verified_power: float
+    verified_power_mc_se: float
+    relative_precision: float
+    reference_distribution: str
+    sd_slope: float
+    reason: str
+    points: tuple[SizePoint, ...] = ()
+    flags: tuple[str, ...] = ()
+
+    def to_dict(self) -> dict[str, object]:
+        d = asdict(self)
+        d["flags"] = list(self.flags)
+        d["points"] = [asdict(p) for p in self.points]
+        return d
+
+
+@dataclass(frozen=True)
+class SizeResult:
+    scenario_name: str
+    records: tuple[SizeRecord, ...]
+    provenance: dict[str, object]
+    warnings: tuple[str, ...] = ()
+    partial: bool = False
+    cautions: tuple[str, ...] = CAUTIONS
+
+    def to_dict(self) -> dict[str, object]:
+        return {
+            "scenario": self.scenario_name,
+            "partial": self.partial,
+            "provenance": self.provenance,
+            "warnings": list(self.warnings),
+            "cautions": list(self.cautions),
+            "results": [r.to_dict() for r in self.records],
+        }
+
+    def select(self, **criteria: object) -> list[SizeRecord]:
+        return [r for r in self.records if all(getattr(r, k) == v for k, v in criteria.items())]
+
+
+def _round_units(x: float) -> int:
+    """Round to an integer, and to three significant figures above 1000 (so nearby proposals coincide)."""
+    n = max(int(round(x)), 1)
+    if n < 1000:
+        return n
+    digits = int(math.floor(math.log10(n))) - 2
+    return int(round(n, -digits))
+
+
+def _probit(p: float) -> float:
+    return float(scipy.stats.norm.ppf(min(max(p, 0.001), 0.999)))
+
+
+@dataclass
+class _Summary:
+    power: float
+    power_se: float
+    sd: float
+    mean_se: float
+    mean_estimate: float
+    truth: float
+    replicates: int
+    failed: int = 0
+
+
+class _Sizes:
+    """Simulations of the scenario's model at several sizes for one treatment probability."""
+
+    def __init__(self, scenario: Scenario, pi: float, batch_size: int, tick: Callable[[], None]) -> None:
+        self.scenario = scenario
+        self.pi = pi
+        self.batch_size = batch_size
+        self.tick = tick
+        self.draws: dict[int, list[GraphDraws]] = {}
+        self.run = [Run(ALTERNATIVE, scenario.outcome, ESTIMANDS)]
+
+    def ensure(self, n: int, graphs: int) -> None:
+        have = self.draws.setdefault(n, [])
+        point = DesignPoint(n, self.pi)
+        for g in range(len(have), graphs):
+            have.append(simulate_graph(self.scenario, point, g, runs=self.run, batch_size=self.batch_size))
+            self.tick()
+
+    def graphs(self, n: int) -> int:
+        return len(self.draws.get(n, ()))
+
+    def summary(self, n: int, key: tuple[str, str, str]) -> _Summary | None:
+        draws = self.draws.get(n)
+        if not draws or key not in draws[0].runs[ALTERNATIVE].estimates:
+            return None
+        design = self.scenario.design
+        reference = reference_distribution(design.reference_distribution, key[0], key[1], n)
+        critical = critical_value(design.significance_level, design.alternative, reference.df)
+        est, se, truth = stack_run(draws, ALTERNATIVE, key)
+        ok = np.isfinite(est) & np.isfinite(se)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            power, power_se = clustered_mean_se(np.where(ok, reject(est / se, critical, design.alternative).astype(float), np.nan))
+        sd, _ = clustered_sd(np.where(ok, est, np.nan))
+        mean_est, _ = clustered_mean_se(np.where(ok, est, np.nan))
+        mean_se = float(np.nanmean(np.where(ok, se, np.nan))) if ok.any() else float("nan")
+        return _Summary(power, power_se, sd, mean_se, mean_est, float(truth.mean()), int(ok.sum()), int(est.size - ok.sum()))
+
+    def points(self, key: tuple[str, str, str]) -> tuple[SizePoint, ...]:
+        out = []
+        for n in sorted(self.draws):
+            s = self.summary(n, key)
+            if s is not None:
+                out.append(SizePoint(n, s.power, s.power_se, s.sd, s.mean_se, s.mean_estimate, s.truth, s.replicates))
+        return tuple(out)
+
+
+def _local_trend(points: Sequence[tuple[int, _Summary]], n: float) -> tuple[float, float, float]:
+    """SD, mean estimated SE and mean estimate at n from the (up to) three simulated sizes nearest n.
+
+    SD and SE are fitted log-linearly in log n (so any power law, not only
+    n^-1/2, is followed), the mean estimate linearly in log n.
+    """
+    usable = [(m, s) for m, s in points if s.sd > 0 and s.mean_se > 0 and math.isfinite(s.sd) and math.isfinite(s.mean_se)]
+    if len(usable) < 2:
+        raise ValueError("a trend needs two sizes")
+    near = sorted(usable, key=lambda item: abs(math.log(item[0]) - math.log(n)))[:3]
+    x = np.log([m for m, _ in near])
+    if np.ptp(x) == 0:
+        raise ValueError("a trend needs two distinct sizes")
+    at = math.log(n)
+
+    def fit(y: np.ndarray) -> float:
+        slope, intercept = np.polyfit(x, y, 1)
+        return float(intercept + slope * at)
+
+    sd = math.exp(fit(np.log([s.sd for _, s in near])))
+    se = math.exp(fit(np.log([s.mean_se for _, s in near])))
+    mean = fit(np.array([s.mean_estimate for _, s in near]))
+    return sd, se, mean
+
+
+def _predicted_power(scenario: Scenario, key: tuple[str, str, str], n: float, points: Sequence[tuple[int, _Summary]]) -> float:
+    """Normal-approximation power of the feasible test at n from the local trend."""
+    sd, se, mean = _local_trend(points, n)
+    design = scenario.design
+    reference = reference_distribution(design.reference_distribution, key[0], key[1], max(int(round(n)), 4))
+    q = critical_value(design.significance_level, design.alternative, reference.df)
+    if design.alternative == "greater":
+        return float(scipy.stats.norm.cdf((mean - q * se) / sd))
+    if design.alternative == "less":
+        return float(scipy.stats.norm.cdf((-mean - q * se) / sd))
+    return float(scipy.stats.norm.cdf((abs(mean) - q * se) / sd) + scipy.stats.norm.cdf((-abs(mean) - q * se) / sd))
+
+
+def _sd_slope(points: Sequence[tuple[int, _Summary]]) -> float:
+    """Least-squares slope of log SD on log n over the given points."""
+    pts = [(math.log(n), math.log(s.sd)) for n, s in points if s.sd > 0 and math.isfinite(s.sd)]
+    if len(pts) < 2:
+        return float("nan")
+    x, y = np.array(pts).T
+    return float(np.polyfit(x, y, 1)[0])
+
+
+def required_sample_size(
+    scenario: Scenario,
+    *,
+    treatment_probabilities: Sequence[float] | None = None,
+    max_units: int | None = None,
+    graphs: int | None = None,
+    assignments_per_graph: int | None = None,
+    seed: int | None = None,
+    relative_precision: float | None = None,
+    max_graphs: int | None = None,
+    batch_size: int = 16,
+    progress: Callable[[EngineProgress], None] | None = None,
+) -> SizeResult:
+    """Units needed for the target power, per treatment probability and planned test (module docstring).
+
+    Parameters
+    ----------
+    scenario
+        A validated scenario.
+    treatment_probabilities, graphs, assignments_per_graph, seed
+        Optional overrides, as in ``simulate_power``.
+    max_units
+        Largest size searched (default ``population.max_units``).
+    relative_precision, max_graphs
+        Overrides of ``simulation.relative_precision`` (target half-width of
+        the 95% Monte Carlo interval of n, relative to n) and
+        ``simulation.max_graphs`` (cap on graphs at the verified size).
+
+    Examples
+    --------
+    >>> from pathlib import Path
+    >>> from designcalc import load_scenario, required_sample_size
+    >>> s = load_scenario(Path(__file__).parents[1] / "scenarios" / "lake_orrin_savings.toml")
+    >>> from dataclasses import replace
+    >>> s = replace(s, estimators=replace(s.estimators, direct=("hajek",), direct_variance=("neyman",), spillover=("pc_balancing",)))
+    >>> r = required_sample_size(s, treatment_probabilities=[0.5], graphs=8, assignments_per_graph=10, relative_precision=0.2)
+    >>> rec = r.select(estimand="direct")[0]
+    >>> rec.status, 200 < rec.required_units < 800
+    ('reached', True)
+    """
+    from designcalc.power import _override
+
+    scenario = _override(scenario, None, treatment_probabilities, graphs, assignments_per_graph, seed)
+    sim = scenario.simulation
+    precision = sim.relative_precision if relative_precision is None else relative_precision
+    cap = sim.max_graphs if max_graphs is None else max(max_graphs, sim.graphs)
+    limit = max_units or scenario.population.search_limit
+    started = time.perf_counter()
+    finished = 0
+    records: list[SizeRecord] = []
+    warnings: list[str] = []
+    partial = False
+
+    def tick() -> None:
+        nonlocal finished
+        finished += 1
+        if progress is not None:
+            progress(EngineProgress(finished, 0, time.perf_counter() - started))
+
+    try:
+        for pi in scenario.design.treatment_probabilities:
+            sizes = _Sizes(scenario, pi, batch_size, tick)
+            records.extend(_search(scenario, sizes, limit, precision, cap, warnings))
+    except KeyboardInterrupt:
+        partial = True
+    return SizeResult(scenario.name, tuple(records), provenance(scenario), tuple(warnings), partial)
+
+
+def _memory_ok(scenario: Scenario, n: int) -> bool:
+    return n * scenario.density.target_mean_degree(n) <= MAX_ADJACENCY_ENTRIES
+
+
+@dataclass
+class _KeyState:
+    key: tuple[str, str, str]
+    below: int | None = None  # largest simulated size known to fall short of the target
+    above: int | None = None  # smallest simulated size known to reach it
+    reason: str = ""
+    done: bool = False
+    ready: bool = False  # bracketed by the trend: the target lies below the next grid size
+
+
+def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap: int, warnings: list[str]) -> list[SizeRecord]:
+    target = scenario.design.target_power
+    pi = sizes.pi
+    G = scenario.simulation.graphs
+    coarse = max(8, G // 4)
+    smallest = max(8, math.ceil(4 / min(pi, 1 - pi)))
+    start = min(max(scenario.population.units[0], smallest), limit)
+    keys = planned_keys(scenario, start)
+    states = {k: _KeyState(k) for k in keys}
+
+    def fits(n: int, key: tuple[str, str, str]) -> bool:
+        return key in planned_keys(scenario, n)
+
+    # 1. Coarse grid: double up (or halve down) until each test is bracketed.
+    sizes.ensure(start, coarse)
+    n = start
+    while True:
+        open_up = []
+        for st in states.values():
+            s = sizes.summary(n, st.key)
+            if st.done or s is None:
+                continue
+            if s.power >= target:
+                st.above = n if st.above is None else min(st.above, n)
+            else:
+                st.below = n if st.below is None else max(st.below, n)
+                if st.above is None and not st.ready:
+                    open_up.append(st)
+        if not open_up:
+            break
+        grid = sorted(m for m in sizes.draws if m >= start)
+        for st in open_up:
+            trend = [(m, sizes.summary(m, st.key)) for m in grid[-3:] if sizes.summary(m, st.key) is not None]
+            st.reason = _plateau_reason(scenario, st.key, trend)
+            if st.reason:
+                st.done = True
+        open_up = [st for st in open_up if not st.done]
+        nxt = min(2 * n, limit)
+        # A test whose trend already predicts the target before the next size needs no more grid.
+        for st in open_up:
+            if nxt > n and _solve_trend(scenario, sizes, st.key, n, nxt) is not None:
+                st.ready = True
+        open_up = [st for st in open_up if not st.ready]
+        if not open_up or nxt == n:
+            for st in open_up:
+                s = sizes.summary(n, st.key)
+                st.reason = f"not reachable up to {limit:,} units: simulated power {s.power:.3f} ± {s.power_se:.3f} there"
+                st.done = True
+            break
+        if not _memory_ok(scenario, nxt):
+            for st in open_up:
+                st.reason = (
+                    f"not reachable up to {n:,} units; larger networks were not simulated: at {nxt:,} units the "
+                    f"adjacency would hold more than {MAX_ADJACENCY_ENTRIES:,} entries"
+                )
+                st.done = True
+            break
+        for st in open_up:
+            if not fits(nxt, st.key):
+                st.reason = f"not reachable up to {n:,} units; this variance estimator is not available at {nxt:,} units"
+                st.done = True
+        if all(st.done for st in open_up):
+            break
+        sizes.ensure(nxt, coarse)
+        n = nxt
+    # Halve down for tests already powered at the start.
+    n = start
+    while True:
+        low = [st for st in states.values() if not st.done and st.below is None and st.above == n]
+        if not low:
+            break
+        nxt = max(n // 2, smallest)
+        if nxt == n:
+            for st in low:
+                st.reason = f"the target power is reached already at {n} units, the smallest size searched"
+                st.done = True
+            break
+        sizes.ensure(nxt, coarse)
+        for st in low:
+            s = sizes.summary(nxt, st.key)
+            if s.power >= target:
+                st.above = nxt
+            else:
+                st.below = nxt
+        n = nxt
+
+    # 2-3. Propose, verify, refine, per test.
+    records = []
+    for key, st in states.items():
+        record = _refine(scenario, sizes, st, precision, cap, limit) if not st.done else None
+        if record is None:
+            points = sizes.points(key)
+            trend = [(p.units, sizes.summary(p.units, key)) for p in points]
+            smallest_reached = st.reason.startswith("the target power is reached already")
+            records.append(
+                SizeRecord(
+                    estimand=key[0], estimator=key[1], variance_estimator=key[2], treatment_probability=pi,
+                    status="reached at the smallest size" if smallest_reached else "not reachable",
+                    required_units=st.above if smallest_reached else None,
+                    units_low=float("nan"), units_high=float("nan"), verified_units=None,
+                    verified_power=float("nan"), verified_power_mc_se=float("nan"), relative_precision=float("nan"),
+                    reference_distribution=reference_distribution(scenario.design.reference_distribution, key[0], key[1], points[-1].units if points else start).name,
+                    sd_slope=_sd_slope(trend), reason=st.reason, points=points,
+                )
+            )
+        else:
+            records.append(record)
+    return records
+
+
+def _plateau_reason(scenario: Scenario, key: tuple[str, str, str], trend: Sequence[tuple[int, _Summary]]) -> str:
+    """Why the target cannot be reached, when three doubling sizes show the signal-to-noise ratio not growing."""
+    if len(trend) < 3:
+        return ""
+    slope = _sd_slope(trend)
+    (n0, s0), (n2, s2) = trend[0], trend[-1]
+    snr0 = abs(s0.mean_estimate) / s0.sd if s0.sd > 0 else 0.0
+    snr2 = abs(s2.mean_estimate) / s2.sd if s2.sd > 0 else 0.0
+    # Normal theory: quadrupling n doubles the ratio; 15% is far below that.
+    if snr2 >= 1.15 * snr0:
+        return ""
+    growth = scenario.density.growth_exponent
+    if slope > -0.1:
+        why = (
+            f"the estimator's SD stops shrinking as n grows (log-log slope {slope:+.2f} from {n0:,} to {n2:,} units"
+            + (f"; the density rule has growth exponent {growth:g}" if growth > 0 else "")
+            + ")"
+        )
+    elif abs(s2.mean_estimate) < 0.5 * abs(s2.truth):
+        why = f"bias dominates: the mean estimate {s2.mean_estimate:.4g} is far from the true effect {s2.truth:.4g} and does not approach it as n grows"
+    else:
+        why = f"the mean estimate shrinks as fast as its SD (effect/SD {snr0:.2f} at {n0:,} units, {snr2:.2f} at {n2:,})"
+    return f"not reachable: {why}"
+
+
+def _trend_points(sizes: _Sizes, key: tuple[str, str, str]) -> list[tuple[int, _Summary]]:
+    return [(n, sm) for n in sorted(sizes.draws) if (sm := sizes.summary(n, key)) is not None]
+
+
+def _solve_trend(scenario: Scenario, sizes: _Sizes, key: tuple[str, str, str], low: float, high: float) -> float | None:
+    """Size in [low, high] where the trend's predicted power equals the target, if it crosses there."""
+    target = scenario.design.target_power
+    points = _trend_points(sizes, key)
+    try:
+        if not _predicted_power(scenario, key, low, points) < target <= _predicted_power(scenario, key, high, points):
+            return None
+        lo, hi = math.log(low), math.log(high)
+        for _ in range(50):
+            mid = 0.5 * (lo + hi)
+            if _predicted_power(scenario, key, math.exp(mid), points) < target:
+                lo = mid
+            else:
+                hi = mid
+    except (ValueError, ZeroDivisionError, FloatingPointError):
+        return None
+    return math.exp(0.5 * (lo + hi))
+
+
+def _probit_slope(scenario: Scenario, sizes: _Sizes, key: tuple[str, str, str], n: float) -> float:
+    """d probit(power) / d log n near the target.
+
+    Near the target, probit(power) is about effect/SD - q with effect/SD =
+    q + z_power, so with SD proportional to n^b the slope is -b (q + z_power).
+    b is the log-log slope of the SD over every simulated size (many points,
+    so steadier than a local derivative), kept within [-1, -0.05].
+    """
+    design = scenario.design
+    b = _sd_slope(_trend_points(sizes, key))
+    b = -0.5 if not math.isfinite(b) else min(max(b, -1.0), -0.05)
+    return -b * (critical_value(design.significance_level, design.alternative) + _probit(design.target_power))
+
+
+_POOL_WINDOW = 0.15  # |log(n_i / n)| within which simulated sizes are pooled into one estimate
+
+
+def _pooled(scenario: Scenario, sizes: _Sizes, key: tuple[str, str, str], centre: float, slope: float) -> tuple[float, float, float]:
+    """Pooled probit-Newton estimate of log n from every simulated size near ``centre``.
+
+    Each size n_i with power p_i (MC se s_i) gives log n_i + (Phi^-1(target)
+    - Phi^-1(p_i)) / slope with variance (s_i / (phi(Phi^-1(p_i)) slope))^2;
+    the estimates are combined by inverse variance.  Returns (log n, the
+    95% half-width in log n, total information).
+    """
+    target = scenario.design.target_power
+    num = den = 0.0
+    for n, sm in _trend_points(sizes, key):
+        if abs(math.log(n) - math.log(centre)) > _POOL_WINDOW or not sm.power_se > 0:
+            continue
+        z = _probit(sm.power)
+        dens = float(scipy.stats.norm.pdf(z)) * slope
+        weight = (dens / sm.power_se) ** 2
+        num += weight * (math.log(n) + (_probit(target) - z) / slope)
+        den += weight
+    if den == 0:
+        return math.log(centre), float("inf"), 0.0
+    return num / den, _Z95 / math.sqrt(den), den
+
+
+def _refine(scenario: Scenario, sizes: _Sizes, st: _KeyState, precision: float, cap: int, limit: int) -> SizeRecord:
+    G = scenario.simulation.graphs
+    key = st.key
+    low = st.below
+    high = st.above if st.above is not None else min(2 * low, limit)
+    guess = _solve_trend(scenario, sizes, key, low, high)
+    if guess is None:
+        # The trend does not cross the target between the two sizes: interpolate their powers on the probit scale.
+        a, b = sizes.summary(low, key), sizes.summary(high, key)
+        za, zb = _probit(a.power), _probit(b.power) if b is not None else _probit(a.power) + 1.0
+        w = (_probit(scenario.design.target_power) - za) / (zb - za) if zb != za else 0.5
+        guess = math.exp(math.log(low) + min(max(w, 0.0), 1.0) * (math.log(high) - math.log(low)))
+    n_v = min(max(_round_units(guess), low + 1), limit)
+    log_hat, h = math.log(n_v), float("inf")
+    for _ in range(_MAX_REFINE_STEPS):
+        sizes.ensure(n_v, max(G, sizes.graphs(n_v)))
+        slope = _probit_slope(scenario, sizes, key, n_v)
+        log_hat, h, info = _pooled(scenario, sizes, key, n_v, slope)
+        if abs(log_hat - math.log(n_v)) > max(h, precision / 2):
+            # Move, at most by a factor of 2, staying above the size known to fall short.
+            step = min(max(log_hat - math.log(n_v), -math.log(2)), math.log(2))
+            nxt = min(max(_round_units(n_v * math.exp(step)), low + 1), limit)
+            if nxt != n_v:
+                n_v = nxt
+                continue
+        if h > precision and sizes.graphs(n_v) < cap:
+            # Information grows with replicates: add what the precision needs, plus 10%.
+            now = sizes.graphs(n_v)
+            needed = math.ceil(now * ((h / precision) ** 2 - 1) * 1.1) + 1
+            sizes.ensure(n_v, min(cap, now + max(needed, 1)))
+            continue
+        break
+    s = sizes.summary(n_v, key)
+    n_hat = math.exp(log_hat)
+    flags = []
+    if h > precision:
+        flags.append(f"precision ±{h:.1%} short of the requested ±{precision:.1%} (max_graphs = {cap})")
+    if s.failed:
+        flags.append(f"{s.failed} of {s.failed + s.replicates} replicates at {n_v:,} units had no estimate (an empty arm, or the estimator undefined on the graph); power counts the others")
+    if n_hat > limit:
+        flags.append(f"the estimate lies beyond the search limit of {limit:,} units")
+    points = sizes.points(key)
+    reference = reference_distribution(scenario.design.reference_distribution, key[0], key[1], n_v)
+    return SizeRecord(
+        estimand=key[0], estimator=key[1], variance_estimator=key[2], treatment_probability=sizes.pi,
+        status="reached", required_units=math.ceil(n_hat), units_low=n_hat * math.exp(-h), units_high=n_hat * math.exp(h),
+        verified_units=n_v, verified_power=s.power, verified_power_mc_se=s.power_se, relative_precision=h,
+        reference_distribution=reference.name,
+        sd_slope=_sd_slope(_trend_points(sizes, key)),
+        reason="", points=points, flags=tuple(flags),
+    )
