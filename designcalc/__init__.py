@@ -21,6 +21,7 @@ from designcalc.diagnostics import ScenarioCheck, check_scenario
 from designcalc.power import PowerRecord, PowerResult, simulate_power
 from designcalc.mde import MdeRecord, MdeResult, minimum_detectable_effects
 from designcalc.sample_size import SizePoint, SizeRecord, SizeResult, required_sample_size
+from designcalc.compare import CompareResult, CompareRow, Criterion, compare_treatment_probabilities, parse_test_spec
 
 __all__ = [
     "__version__",
@@ -43,4 +44,9 @@ __all__ = [
     "SizeRecord",
     "SizeResult",
     "required_sample_size",
+    "CompareResult",
+    "CompareRow",
+    "Criterion",
+    "compare_treatment_probabilities",
+    "parse_test_spec",
 ]
