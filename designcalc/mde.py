@@ -164,6 +164,10 @@ class _Track:
     power: float = float("nan")
     power_se: float = float("nan")
     sd: float = float("nan")
+    mean_se: float = float("nan")
+    mean_estimate: float = float("nan")
+    null_sd: float = float("nan")
+    null_mean_se: float = float("nan")
     formula_power: float = float("nan")
     formula_power_se: float = float("nan")
     searched: bool = False
@@ -214,14 +218,77 @@ def _factor_for(track: _Track, target: float, draws: Sequence[GraphDraws], pi: f
     return c, target + gap(c)
 
 
-def _rates(draws: Sequence[GraphDraws], label: str, key: tuple[str, str, str], critical: float, alternative: str) -> tuple[float, float, float]:
+def _rates(draws: Sequence[GraphDraws], label: str, key: tuple[str, str, str], critical: float, alternative: str) -> tuple[float, float, float, float, float]:
+    """Feasible power (and MC se), SD, mean estimated SE and mean estimate of one key in one run."""
     est, se, _ = stack_run(draws, label, key)
     ok = np.isfinite(est) & np.isfinite(se)
     with np.errstate(divide="ignore", invalid="ignore"):
         rejected = np.where(ok, reject(est / se, critical, alternative).astype(float), np.nan)
     power, power_se = clustered_mean_se(rejected)
     sd, _ = clustered_sd(np.where(ok, est, np.nan))
-    return power, power_se, sd
+    mean_se = float(np.nanmean(np.where(ok, se, np.nan))) if ok.any() else float("nan")
+    mean_est = float(np.nanmean(np.where(ok, est, np.nan))) if ok.any() else float("nan")
+    return power, power_se, sd, mean_se, mean_est
+
+
+def _power_model(t: _Track, alternative: str) -> Callable[[float], float] | None:
+    """Predicted power as a function of the effect (see ``_model_step``), or None without the inputs."""
+    m = t.effect
+    mu = t.direction * t.mean_estimate
+    if not (m > 0 and mu > 0 and t.sd > 0 and t.null_sd > 0 and t.mean_se > 0 and t.null_mean_se > 0):
+        return None
+
+    def predicted(e: float) -> float:
+        r2 = (e / m) ** 2
+        sd = math.sqrt(max(t.null_sd**2 + (t.sd**2 - t.null_sd**2) * r2, 1e-300))
+        se = math.sqrt(max(t.null_mean_se**2 + (t.mean_se**2 - t.null_mean_se**2) * r2, 1e-300))
+        signal = e * mu / m
+        p = float(scipy.stats.norm.cdf((signal - t.critical * se) / sd))
+        if alternative == "two-sided":
+            p += float(scipy.stats.norm.cdf((-signal - t.critical * se) / sd))
+        return p
+
+    return predicted
+
+
+def _probit_slope(t: _Track, alternative: str) -> float:
+    """d probit(power) / d effect at the last simulated effect: from the power model, else 1/SD."""
+    predicted = _power_model(t, alternative)
+    if predicted is not None:
+        h = 0.01 * t.effect
+        slope = (_probit(predicted(t.effect + h)) - _probit(predicted(t.effect - h))) / (2 * h)
+        if math.isfinite(slope) and slope > 0:
+            return slope
+    return 1.0 / t.sd if t.sd > 0 else float("nan")
+
+
+def _model_step(t: _Track, target: float, alternative: str) -> float:
+    """The effect where a two-point model of the sampling distribution predicts the target power.
+
+    Between the null (effect 0: SD0, mean SE S0) and the last simulated effect
+    m (SD, mean SE S, mean estimate mu), variances are taken quadratic in the
+    effect, Var(e) = SD0^2 + (SD^2 - SD0^2)(e/m)^2 (the effect enters the
+    outcome linearly, so its share of the variance grows with its square),
+    the mean estimate proportional to e, and power normal:
+    Phi((e mu/m - q S(e)) / SD(e)).  Newton steps that use only SD at m
+    undershoot when the SD grows with the effect; this model does not.
+    """
+    m = t.effect
+    predicted = _power_model(t, alternative)
+    if predicted is None:
+        return m + (_probit(target) - _probit(t.power)) * t.sd
+    low, high = 0.25 * m, 4.0 * m
+    if predicted(high) < target:
+        return 2.0 * m  # the model sees no crossing: take a bounded step and let the plateau check decide
+    if predicted(low) >= target:
+        return 0.5 * m
+    for _ in range(60):
+        mid = 0.5 * (low + high)
+        if predicted(mid) < target:
+            low = mid
+        else:
+            high = mid
+    return 0.5 * (low + high)
 
 
 def minimum_detectable_effects(
@@ -354,7 +421,7 @@ def _design_point(
             direction = -1
         else:
             direction = 1 if base_effect >= 0 else -1
-        track = _Track(key, base, direction, direction * base_effect, multiplier, critical, multiplier * sd)
+        track = _Track(key, base, direction, direction * base_effect, multiplier, critical, multiplier * sd, null_sd=sd, null_mean_se=mean_se)
         track.flags = (reference.name,)
         tracks.append(track)
         if not (track.base_effect > 0):
@@ -373,7 +440,7 @@ def _design_point(
             new = simulate(runs, range(graphs_now))
             for t in active:
                 draws_by_track[t.label] = new
-                t.power, t.power_se, t.sd = _rates(new, t.label, t.key, t.critical, alternative)
+                t.power, t.power_se, t.sd, t.mean_se, t.mean_estimate = _rates(new, t.label, t.key, t.critical, alternative)
                 t.effect = float(np.mean([d.runs[t.label].estimands.value(t.key[0]) for d in new])) * t.direction
                 if t.steps == 0:
                     t.formula_power, t.formula_power_se = t.power, t.power_se
@@ -389,9 +456,8 @@ def _design_point(
                 if not agree and t.steps < _MAX_SEARCH_STEPS:
                     t.searched = True
                     t.steps += 1
-                    step = (_probit(target) - _probit(t.power)) * t.sd
                     # Keep each step within a factor of 2 of the current effect.
-                    new_effect = min(max(t.effect + step, 0.5 * t.effect), 2.0 * t.effect)
+                    new_effect = min(max(_model_step(t, target, alternative), 0.5 * t.effect), 2.0 * t.effect)
                     t.factor, t.effect = _factor_for(t, new_effect, null_draws, pi)
                     still.append(t)
                     continue
@@ -400,21 +466,33 @@ def _design_point(
                 t.done = True
             active = still
         # Adaptive precision: more graphs for the effects not yet known precisely enough.
-        graphs_now = G
-        while True:
+        for _ in range(8):
             loose = [
                 t for t in tracks
-                if t.label in draws_by_track and not t.unreachable and half_width(t) > precision * _estimate(t, target)
+                if t.label in draws_by_track and not t.unreachable and len(draws_by_track[t.label]) < cap
+                and half_width(t, alternative) > precision * _estimate(t, target, alternative)
             ]
-            if not loose or graphs_now >= cap:
+            if not loose:
                 break
-            more = min(cap, 2 * graphs_now) - graphs_now
-            runs = [Run(t.label, t.base.scaled_for(t.key[0], t.factor), (t.key[0],), frozenset({t.key})) for t in loose]
-            extra = simulate(runs, range(graphs_now, graphs_now + more))
-            graphs_now += more
+            # The interval shrinks like 1/sqrt(graphs): each test gets what it needs, plus 10%, at most 4x.
+            goals = {}
             for t in loose:
-                draws_by_track[t.label] = draws_by_track[t.label] + extra
-                t.power, t.power_se, t.sd = _rates(draws_by_track[t.label], t.label, t.key, t.critical, alternative)
+                have = len(draws_by_track[t.label])
+                ratio = (half_width(t, alternative) / (precision * _estimate(t, target, alternative))) ** 2
+                goals[t.label] = min(cap, 4 * have, max(have + 1, math.ceil(have * ratio * 1.1)))
+            start = min(len(draws_by_track[t.label]) for t in loose)
+            for g in range(start, max(goals.values())):
+                runs = [
+                    Run(t.label, t.base.scaled_for(t.key[0], t.factor), (t.key[0],), frozenset({t.key}))
+                    for t in loose if len(draws_by_track[t.label]) == g and g < goals[t.label]
+                ]
+                if not runs:
+                    continue
+                (extra,) = simulate(runs, range(g, g + 1))
+                for run in runs:
+                    draws_by_track[run.label] = draws_by_track[run.label] + [extra]
+            for t in loose:
+                t.power, t.power_se, t.sd, t.mean_se, t.mean_estimate = _rates(draws_by_track[t.label], t.label, t.key, t.critical, alternative)
                 t.effect = t.direction * float(np.mean([d.runs[t.label].estimands.value(t.key[0]) for d in draws_by_track[t.label]]))
 
     records = []
@@ -426,8 +504,8 @@ def _design_point(
             method = "not reachable"
             n_graphs = len(draws_by_track[t.label])
         elif verified:
-            mde = _estimate(t, target)
-            hw = half_width(t)
+            mde = _estimate(t, target, alternative)
+            hw = half_width(t, alternative)
             method = "searched by simulation" if t.searched else "formula, verified by simulation"
             n_graphs = len(draws_by_track[t.label])
         else:
@@ -505,12 +583,12 @@ def _plateau(history: list[tuple[float, float, float, float]]) -> str:
     return ""
 
 
-def half_width(t: _Track) -> float:
-    """Half-width of the 95% MC interval of the MDE: the power's MC error over the probit slope phi(.)/SD."""
-    slope = float(scipy.stats.norm.pdf(_probit(t.power))) / t.sd if t.sd > 0 else float("nan")
+def half_width(t: _Track, alternative: str) -> float:
+    """Half-width of the 95% MC interval of the MDE: the power's MC error over the slope of the power curve."""
+    slope = float(scipy.stats.norm.pdf(_probit(t.power))) * _probit_slope(t, alternative)
     return _Z95 * t.power_se / slope if slope > 0 else float("inf")
 
 
-def _estimate(t: _Track, target: float) -> float:
+def _estimate(t: _Track, target: float, alternative: str) -> float:
     """One probit-Newton step from the last simulated effect to the target power."""
-    return t.effect + (_probit(target) - _probit(t.power)) * t.sd
+    return t.effect + (_probit(target) - _probit(t.power)) / _probit_slope(t, alternative)

@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import platform
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import asdict, dataclass, replace
 from typing import Callable, Sequence
 
 import numpy as np
@@ -301,6 +301,9 @@ def simulate_power(
     seed: int | None = None,
     batch_size: int = 16,
     progress: Callable[[EngineProgress], None] | None = None,
+    adaptive: bool = False,
+    max_graphs: int | None = None,
+    relative_precision: float | None = None,
 ) -> PowerResult:
     """Simulate the power of every planned estimator at every design point.
 
@@ -316,6 +319,13 @@ def simulate_power(
         the numbers.
     progress
         Called after every finished graph with an ``EngineProgress``.
+    adaptive, max_graphs, relative_precision
+        With ``adaptive=True`` a design point gets more graphs (doubling, up
+        to ``max_graphs``, default ``simulation.max_graphs``) until every
+        test's power is settled: at least ``SETTLED_Z`` Monte Carlo SEs
+        from the target, or known to +/- ``relative_precision`` (default
+        ``simulation.relative_precision``, read as power units: 0.03 is
+        three percentage points).  Each record says how many graphs it used.
 
     Returns
     -------
@@ -342,23 +352,47 @@ def simulate_power(
     records: list[PowerRecord] = []
     warnings: list[str] = []
     partial = False
+    cap = max(max_graphs or scenario.simulation.max_graphs, scenario.simulation.graphs)
+    precision = scenario.simulation.relative_precision if relative_precision is None else relative_precision
     try:
         for point in points:
-            draws = []
-            for g in range(scenario.simulation.graphs):
-                draws.append(simulate_graph(scenario, point, g, batch_size=batch_size))
-                if g == scenario.simulation.graphs - 1:
-                    # Summarise before reporting progress, so that Ctrl-C in the
-                    # callback after a point's last graph keeps that point.
-                    records.extend(summarise_design_point(scenario, point, draws))
-                    warnings.extend(_point_warnings(scenario, point, draws))
-                finished += 1
-                if progress is not None:
-                    progress(EngineProgress(finished, total, time.perf_counter() - started))
+            draws: list[GraphDraws] = []
+            goal = scenario.simulation.graphs
+            while True:
+                summary = None
+                for g in range(len(draws), goal):
+                    draws.append(simulate_graph(scenario, point, g, batch_size=batch_size))
+                    if g == goal - 1:
+                        # Summarise before reporting progress, so that Ctrl-C in the
+                        # callback after a point's last graph keeps that point.
+                        summary = summarise_design_point(scenario, point, draws)
+                        if not adaptive or goal >= cap or _settled(summary, scenario.design.target_power, precision):
+                            records.extend(summary)
+                            warnings.extend(_point_warnings(scenario, point, draws))
+                    finished += 1
+                    if progress is not None:
+                        progress(EngineProgress(finished, total, time.perf_counter() - started))
+                if not adaptive or goal >= cap or (summary is not None and _settled(summary, scenario.design.target_power, precision)):
+                    break
+                goal = min(cap, 2 * goal)
+                total += goal - len(draws)
     except KeyboardInterrupt:
         partial = True
     warnings.extend(_scenario_warnings(scenario))
     return PowerResult(scenario.name, tuple(records), provenance(scenario), tuple(warnings), partial)
+
+
+SETTLED_Z = 3.0
+
+
+def _settled(records: Sequence[PowerRecord], target: float, precision: float) -> bool:
+    """Every test's power clearly above or below the target, or known precisely enough."""
+    for r in records:
+        if not np.isfinite(r.power_mc_se):
+            continue
+        if abs(r.power - target) < SETTLED_Z * r.power_mc_se and 1.959963984540054 * r.power_mc_se > precision:
+            return False
+    return True
 
 
 def _scenario_warnings(scenario: Scenario) -> list[str]:
