@@ -161,13 +161,16 @@ def compare_treatment_probabilities(
     graphs: int | None = None,
     assignments_per_graph: int | None = None,
     seed: int | None = None,
+    relative_precision: float | None = None,
+    max_graphs: int | None = None,
     batch_size: int = 16,
     progress: Callable[[EngineProgress], None] | None = None,
 ) -> CompareResult:
     """Compare treatment probabilities for every planned size and test (module docstring).
 
     ``probabilities`` defaults to 0.1, 0.2, ..., 0.9 together with the
-    scenario's own.  Best probability: the smallest MDE; tied: an MDE whose
+    scenario's own.  ``relative_precision`` and ``max_graphs`` apply with
+    ``verify=True`` (see ``minimum_detectable_effects``).  Best probability: the smallest MDE; tied: an MDE whose
     difference from the best is within two combined Monte Carlo SEs.
 
     Examples
@@ -185,7 +188,8 @@ def compare_treatment_probabilities(
             raise DesignCalcError(f"treatment probabilities must lie in (0, 1); got {p}")
     mde = minimum_detectable_effects(
         scenario, units=units, treatment_probabilities=grid, graphs=graphs, assignments_per_graph=assignments_per_graph,
-        seed=seed, verify=verify, batch_size=batch_size, progress=progress,
+        seed=seed, relative_precision=relative_precision, max_graphs=max_graphs, verify=verify,
+        batch_size=batch_size, progress=progress,
     )
     records = list(mde.records)
     groups: dict[tuple[int, str, str, str], list[MdeRecord]] = {}

@@ -213,7 +213,8 @@ def _factor_for(track: _Track, target: float, draws: Sequence[GraphDraws], pi: f
             break
         high *= 2
     else:
-        raise ModelError(f"no effect of size {target:.4g} is reachable in this binary outcome model (probabilities clip)")
+        bound = "probabilities clip at 0 and 1" if track.base.link == "identity" else "the logistic link bounds probabilities"
+        raise ModelError(f"no effect of size {target:.4g} exists in this binary outcome model ({bound})")
     c = scipy.optimize.brentq(gap, 0.0, high, xtol=1e-10 * abs(high), rtol=1e-10)
     return c, target + gap(c)
 
@@ -363,7 +364,8 @@ def minimum_detectable_effects(
             cache.forget(point)
     except KeyboardInterrupt:
         partial = True
-    return MdeResult(scenario.name, tuple(records), provenance(scenario), tuple(warnings), partial)
+    extra = {"relative_precision": precision, "max_graphs": cap, "verified": verify}
+    return MdeResult(scenario.name, tuple(records), provenance(scenario, **extra), tuple(warnings), partial)
 
 
 def _design_point(
@@ -433,7 +435,11 @@ def _design_point(
     if verify:
         active = [t for t in tracks if not t.done and math.isfinite(t.formula) and t.formula > 0]
         for t in active:
-            t.factor, t.effect = _factor_for(t, t.formula, null_draws, pi)
+            try:
+                t.factor, t.effect = _factor_for(t, t.formula, null_draws, pi)
+            except ModelError as exc:
+                t.unreachable, t.done = f"not reachable: {exc}", True
+        active = [t for t in active if not t.done]
         graphs_now = G
         while active:
             runs = [Run(t.label, t.base.scaled_for(t.key[0], t.factor), (t.key[0],), frozenset({t.key})) for t in active]
@@ -458,7 +464,11 @@ def _design_point(
                     t.steps += 1
                     # Keep each step within a factor of 2 of the current effect.
                     new_effect = min(max(_model_step(t, target, alternative), 0.5 * t.effect), 2.0 * t.effect)
-                    t.factor, t.effect = _factor_for(t, new_effect, null_draws, pi)
+                    try:
+                        t.factor, t.effect = _factor_for(t, new_effect, null_draws, pi)
+                    except ModelError as exc:
+                        t.unreachable, t.done = f"not reachable: {exc}", True
+                        continue
                     still.append(t)
                     continue
                 if not agree:
@@ -499,10 +509,10 @@ def _design_point(
     for t in tracks:
         sd, sd_se, mean_se, size, size_se = null_summary[t.key]
         verified = t.label in draws_by_track
-        if verified and t.unreachable:
+        if t.unreachable:
             mde, hw = float("nan"), float("nan")
             method = "not reachable"
-            n_graphs = len(draws_by_track[t.label])
+            n_graphs = len(draws_by_track[t.label]) if verified else G
         elif verified:
             mde = _estimate(t, target, alternative)
             hw = half_width(t, alternative)

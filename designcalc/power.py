@@ -256,8 +256,8 @@ def summarise_design_point(scenario: Scenario, point: DesignPoint, draws: Sequen
     return records
 
 
-def provenance(scenario: Scenario) -> dict[str, object]:
-    """What a reviewer needs to reproduce the numbers."""
+def provenance(scenario: Scenario, **settings: object) -> dict[str, object]:
+    """What a reviewer needs to reproduce the numbers; ``settings`` adds a solver's own (precision, caps)."""
     import networkx
 
     return {
@@ -275,6 +275,7 @@ def provenance(scenario: Scenario) -> dict[str, object]:
         "scipy": sp.__version__,
         "networkx": networkx.__version__,
         "utc_time": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        **settings,
     }
 
 
@@ -379,7 +380,8 @@ def simulate_power(
     except KeyboardInterrupt:
         partial = True
     warnings.extend(_scenario_warnings(scenario))
-    return PowerResult(scenario.name, tuple(records), provenance(scenario), tuple(warnings), partial)
+    extra = {"adaptive": True, "relative_precision": precision, "max_graphs": cap} if adaptive else {}
+    return PowerResult(scenario.name, tuple(records), provenance(scenario, **extra), tuple(warnings), partial)
 
 
 SETTLED_Z = 3.0
@@ -390,7 +392,11 @@ def _settled(records: Sequence[PowerRecord], target: float, precision: float) ->
     for r in records:
         if not np.isfinite(r.power_mc_se):
             continue
-        if abs(r.power - target) < SETTLED_Z * r.power_mc_se and 1.959963984540054 * r.power_mc_se > precision:
+        # A clustered se of 0 (every replicate agreeing, few graphs) is no
+        # evidence; never trust less than the binomial se at p(1 - p) >= 1/R.
+        floor = np.sqrt(max(r.power * (1 - r.power), 1 / max(r.replicates, 1)) / max(r.replicates, 1))
+        se = max(r.power_mc_se, floor)
+        if abs(r.power - target) < SETTLED_Z * se and 1.959963984540054 * se > precision:
             return False
     return True
 

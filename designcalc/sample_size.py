@@ -298,7 +298,10 @@ def required_sample_size(
             records.extend(_search(scenario, sizes, limit, precision, cap, warnings))
     except KeyboardInterrupt:
         partial = True
-    return SizeResult(scenario.name, tuple(records), provenance(scenario), tuple(warnings), partial)
+    return SizeResult(
+        scenario.name, tuple(records),
+        provenance(scenario, relative_precision=precision, max_graphs=cap, max_units=limit), tuple(warnings), partial,
+    )
 
 
 def _memory_ok(scenario: Scenario, n: int) -> bool:
@@ -541,8 +544,9 @@ def _refine(scenario: Scenario, sizes: _Sizes, st: _KeyState, precision: float, 
         if h > precision and sizes.graphs(n_v) < cap:
             # Information grows with replicates: add what the precision needs, plus 10%.
             now = sizes.graphs(n_v)
-            needed = math.ceil(now * ((h / precision) ** 2 - 1) * 1.1) + 1
-            sizes.ensure(n_v, min(cap, now + max(needed, 1)))
+            # No usable information yet (h infinite, e.g. power 0 or 1 everywhere near): double.
+            needed = math.ceil(now * ((h / precision) ** 2 - 1) * 1.1) + 1 if math.isfinite(h) else now
+            sizes.ensure(n_v, min(cap, 4 * now, now + max(needed, 1)))
             continue
         break
     s = sizes.summary(n_v, key)

@@ -28,10 +28,13 @@ def stdout_console() -> Console:
 
 
 def _register() -> None:
-    from designcalc.cli import check, power
+    from designcalc.cli import check, compare, mde, power, size
 
     check.register(app)
     power.register(app)
+    mde.register(app)
+    size.register(app)
+    compare.register(app)
 
 
 _register()

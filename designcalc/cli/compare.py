@@ -1,0 +1,215 @@
+"""``designcalc compare SCENARIO``: treatment probabilities (and estimators) side by side by SE, MDE and size."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Annotated
+
+import typer
+from rich.console import Console
+from rich.table import Table
+
+from designcalc.cli.output import (
+    check_format,
+    check_max_graphs,
+    check_precision,
+    check_probabilities,
+    emit,
+    flag_references,
+    fmt,
+    interval,
+    planned_test_phrase,
+    plus_minus,
+    print_flag_notes,
+    print_notes,
+    progress_reporter,
+    render_rows_csv,
+)
+from designcalc.compare import (
+    CompareResult,
+    CompareRow,
+    Criterion,
+    TestSpec,
+    compare_treatment_probabilities,
+    parse_test_spec,
+)
+from designcalc.errors import DesignCalcError
+from designcalc.scenario import Scenario, load_scenario
+
+_CSV_FIELDS = (
+    "units", "treatment_probability", "estimand", "estimator", "variance_estimator", "standard_error",
+    "standard_error_mc_se", "mean_estimated_se", "mde", "mde_low", "mde_high", "mde_sd_units", "size", "size_mc_se",
+    "method", "best", "tied_with_best", "chosen_by_criterion", "flags",
+)
+
+_SPEC_FORM = "ESTIMAND[:ESTIMATOR[:VARIANCE]] with ESTIMAND one of direct, spillover, total (e.g. spillover or direct:hajek:neyman)"
+
+
+def parse_cap(text: str) -> tuple[TestSpec, float]:
+    """``SPEC=VALUE``: a test and the largest MDE allowed for it, in outcome units."""
+    allowed = f"SPEC=VALUE with SPEC {_SPEC_FORM} and VALUE a positive number in outcome units (e.g. direct=0.5)"
+    spec_text, sep, value_text = text.rpartition("=")
+    if not sep or not spec_text.strip():
+        raise DesignCalcError(f"--cap: {text!r} is not {allowed}")
+    spec = parse_test_spec(spec_text.strip(), option="--cap")
+    try:
+        value = float(value_text)
+    except ValueError:
+        raise DesignCalcError(f"--cap: {value_text.strip()!r} in {text!r} is not a number; the form is {allowed}") from None
+    if not (math.isfinite(value) and value > 0):
+        raise DesignCalcError(f"--cap: the value in {text!r} must be a positive number in outcome units; the form is {allowed}")
+    return spec, value
+
+
+def build_criterion(scenario: Scenario, units: Sequence[int], objective: str | None, caps: Sequence[str]) -> Criterion | None:
+    """The joint criterion of ``--objective`` and ``--cap``, checked against the planned tests before any simulation."""
+    if objective is None:
+        if caps:
+            raise DesignCalcError("--cap needs --objective: name the test whose MDE is minimised subject to the caps, as " + _SPEC_FORM)
+        return None
+    criterion = Criterion(parse_test_spec(objective, option="--objective"), tuple(parse_cap(c) for c in caps))
+    for option, spec in [("--objective", criterion.objective)] + [("--cap", spec) for spec, _ in criterion.caps]:
+        for n in units:
+            try:
+                spec.resolve(scenario, n)
+            except DesignCalcError as exc:
+                raise DesignCalcError(f"{option}: {exc} (at {n} units)") from None
+    return criterion
+
+
+def _chosen(result: CompareResult) -> dict[int, float]:
+    return {c.units: c.treatment_probability for c in result.choices if c.treatment_probability is not None}
+
+
+def _mark(row: CompareRow) -> str:
+    return "best" if row.best else "tied" if row.tied_with_best else ""
+
+
+def resolved_tests(scenario: Scenario, units: Sequence[int], criterion: Criterion | None) -> list[str]:
+    """What each test named in the criterion stands for, e.g. "spillover = spillover:pc_balancing_corrected:plug_in"."""
+    if criterion is None:
+        return []
+    out = []
+    for spec in [criterion.objective] + [spec for spec, _ in criterion.caps]:
+        keys = sorted({":".join(spec.resolve(scenario, n)) for n in units})
+        line = f"{spec.text} = {' or '.join(keys)}"
+        if line not in out:
+            out.append(line)
+    return out
+
+
+def render_table(result: CompareResult, console: Console, *, scenario: Scenario, verify: bool, resolved: Sequence[str] = ()) -> None:
+    partial = "  (PARTIAL: interrupted)" if result.partial else ""
+    console.print(f"[bold]Treatment probabilities compared: {result.scenario_name}[/]{partial}", soft_wrap=True)
+    flag_cells, flag_notes = flag_references([row.flags for row in result.rows])
+    cell_of = {id(row): cell for row, cell in zip(result.rows, flag_cells)}
+    blocks: dict[tuple[int, str], list[CompareRow]] = {}
+    for row in result.rows:
+        blocks.setdefault((row.units, row.estimand), []).append(row)
+    for (units, estimand), rows in sorted(blocks.items(), key=lambda item: (item[0][0], ("direct", "spillover", "total").index(item[0][1]))):
+        table = Table(title=f"n = {units:,}: {estimand} effect", title_justify="left")
+        columns = ["estimator", "variance", "pi", "SE ± MC se", "MDE [95% MC]", "MDE (SD units)", "size ± MC se"]
+        columns += (["method"] if verify else []) + ["mark", "flags"]
+        for col in columns:
+            table.add_column(col, justify="left" if col in ("estimator", "variance", "method", "mark", "flags") else "right")
+        tests: dict[tuple[str, str], list[CompareRow]] = {}
+        for row in rows:
+            tests.setdefault((row.estimator, row.variance_estimator), []).append(row)
+        for i, members in enumerate(tests.values()):
+            if i:
+                table.add_section()
+            for row in sorted(members, key=lambda r: r.treatment_probability):
+                cells = [
+                    row.estimator, row.variance_estimator, f"{row.treatment_probability:g}",
+                    plus_minus(row.standard_error, row.standard_error_mc_se), interval(row.mde, row.mde_low, row.mde_high),
+                    fmt(row.mde_sd_units), plus_minus(row.size, row.size_mc_se),
+                ]
+                cells += ([row.method] if verify else []) + [_mark(row), cell_of[id(row)]]
+                table.add_row(*cells)
+        console.print(table)
+    print_flag_notes(flag_notes, console)
+    kind = "verified by simulation (as in designcalc mde)" if verify else (
+        "the formula MDE, (critical value + power quantile) x SE, not verified by simulation (add --verify)"
+    )
+    console.print(
+        f"MDE: the true effect at which the planned test has {planned_test_phrase(scenario.design)}; here {kind}. "
+        "SE: the estimator's Monte Carlo SD when the tested effect is zero; size: the test's rejection rate there. "
+        "best: the smallest MDE of that test at that size; tied: an MDE within two combined Monte Carlo SEs of the best. "
+        "Every probability is simulated on the same networks.",
+        soft_wrap=True,
+    )
+    if result.choices:
+        # The criterion can be longer than the table is wide: print it as a line, not as a wrapped title.
+        console.print(f"Joint criterion: {result.choices[0].criterion}", soft_wrap=True)
+        choices = Table()
+        for col in ("n", "chosen pi", "objective MDE", "note"):
+            choices.add_column(col, justify="left" if col == "note" else "right")
+        for c in result.choices:
+            choices.add_row(
+                f"{c.units:,}", "none" if c.treatment_probability is None else f"{c.treatment_probability:g}",
+                "-" if not math.isfinite(c.objective_mde) else f"{c.objective_mde:.4g}", c.note,
+            )
+        console.print(choices)
+        if resolved:
+            console.print("tests in the criterion: " + "; ".join(resolved) + " (the first planned estimator and variance that match)", soft_wrap=True)
+    p = result.provenance
+    console.print(
+        f"{p['replicates_per_design_point']} replicates per probability and size ({p['graphs_per_design_point']} graphs x "
+        f"{p['assignments_per_graph']} assignments){' to start with' if verify else ''}; Monte Carlo SEs clustered by graph; "
+        f"seed {p['seed_entropy']}; scenario sha256 {str(p['scenario_sha256'])[:12]}...",
+        soft_wrap=True,
+    )
+    print_notes(result, console)
+
+
+def render_csv(result: CompareResult) -> str:
+    chosen = _chosen(result)
+    rows = []
+    for r in result.rows:
+        row = r.to_dict()
+        row["flags"] = "; ".join(r.flags)
+        # The design a criterion picks is a probability at a size, so every test at it is marked.
+        row["chosen_by_criterion"] = "" if not result.choices else chosen.get(r.units) == r.treatment_probability
+        rows.append(row)
+    return render_rows_csv(rows, _CSV_FIELDS)
+
+
+def register(app: typer.Typer) -> None:
+    @app.command("compare")
+    def compare(
+        scenario: Annotated[Path, typer.Argument(help="Scenario file (TOML).")],
+        probabilities: Annotated[list[float] | None, typer.Option("--probabilities", "-p", help="Treatment probabilities in (0, 1) to compare; repeat for several (default 0.1, 0.2, ..., 0.9 and the scenario's).")] = None,
+        units: Annotated[list[int] | None, typer.Option("--units", "-n", min=4, max=2_000_000, help="Network size(s), overriding population.units; repeat for several.")] = None,
+        graphs: Annotated[int | None, typer.Option(min=2, max=1_000_000, help="Graphs per design point.")] = None,
+        assignments: Annotated[int | None, typer.Option(min=1, max=100_000, help="Assignments per graph.")] = None,
+        seed: Annotated[int | None, typer.Option(min=0, help="Root seed, overriding simulation.seed.")] = None,
+        verify: Annotated[bool, typer.Option("--verify/--no-verify", help="Verify every MDE by simulation, as designcalc mde does (slower); default: the formula MDE.")] = False,
+        precision: Annotated[float | None, typer.Option(help="With --verify: target half-width of each MDE's 95% Monte Carlo interval relative to the MDE, in (0, 0.5]; overrides simulation.relative_precision.")] = None,
+        max_graphs: Annotated[int | None, typer.Option(min=2, max=1_000_000, help="With --verify: most graphs per design point spent on precision; overrides simulation.max_graphs.")] = None,
+        objective: Annotated[str | None, typer.Option(help="Pick one probability per size: the smallest MDE of this test, ESTIMAND[:ESTIMATOR[:VARIANCE]].")] = None,
+        cap: Annotated[list[str] | None, typer.Option(help="With --objective: only probabilities where MDE(SPEC) <= VALUE (outcome units), as SPEC=VALUE; repeat for several.")] = None,
+        output_format: Annotated[str, typer.Option("--format", help="table, json or csv.")] = "table",
+    ) -> None:
+        """Compare treatment probabilities by SE, MDE and test size for every planned test, and pick one by a joint criterion."""
+        from designcalc.cli.main import stderr_console
+
+        check_format(output_format)
+        check_probabilities(probabilities, "--probabilities")
+        check_precision(precision)
+        loaded = load_scenario(scenario)
+        check_max_graphs(max_graphs, graphs if graphs is not None else loaded.simulation.graphs)
+        sizes = units or loaded.population.units
+        criterion = build_criterion(loaded, sizes, objective, cap or ())
+        with progress_reporter(stderr_console(), known_total=False) as report:
+            result = compare_treatment_probabilities(
+                loaded, probabilities=probabilities, units=units, criterion=criterion, verify=verify, graphs=graphs,
+                assignments_per_graph=assignments, seed=seed, relative_precision=precision, max_graphs=max_graphs,
+                progress=report,
+            )
+
+        def table(res: CompareResult, console: Console) -> None:
+            render_table(res, console, scenario=loaded, verify=verify, resolved=resolved_tests(loaded, sizes, criterion))
+
+        emit(result, output_format, table=table, csv_text=render_csv, partial_message="interrupted: showing the design points that finished")

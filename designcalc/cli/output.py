@@ -1,0 +1,197 @@
+"""What every command shares: option checks, number formats, CSV, the progress display, footers.
+
+Nothing here computes a statistic; it only checks options, draws the
+library's progress callback and prints results the library returned.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import math
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
+from typing import Any
+
+import typer
+from rich.console import Console
+from rich.progress import (
+    BarColumn,
+    MofNCompleteColumn,
+    Progress,
+    SpinnerColumn,
+    TextColumn,
+    TimeElapsedColumn,
+    TimeRemainingColumn,
+)
+
+from designcalc.engine import EngineProgress
+from designcalc.errors import DesignCalcError
+
+__all__ = [
+    "FORMATS",
+    "check_format",
+    "check_max_graphs",
+    "check_precision",
+    "check_probabilities",
+    "emit",
+    "flag_references",
+    "fmt",
+    "interval",
+    "planned_test_phrase",
+    "plus_minus",
+    "print_flag_notes",
+    "print_notes",
+    "progress_reporter",
+    "render_rows_csv",
+]
+
+FORMATS = ("table", "json", "csv")
+
+
+def check_format(output_format: str) -> None:
+    """Reject an unknown ``--format`` with the allowed values."""
+    if output_format not in FORMATS:
+        raise DesignCalcError(f"--format must be one of {', '.join(FORMATS)}; got {output_format!r}")
+
+
+def check_probabilities(values: Sequence[float] | None, option: str) -> None:
+    """Every treatment probability given on the command line must lie in (0, 1)."""
+    for p in values or ():
+        if not 0 < p < 1:
+            raise DesignCalcError(f"{option} must be in (0, 1); got {p}")
+
+
+def check_precision(value: float | None) -> None:
+    """``--precision`` is a relative half-width: in (0, 0.5]."""
+    if value is not None and not (0 < value <= 0.5):
+        raise DesignCalcError(
+            f"--precision must be in (0, 0.5] (the half-width of the 95% Monte Carlo interval relative to the answer, "
+            f"e.g. 0.05 for ±5%); got {value}"
+        )
+
+
+def check_max_graphs(max_graphs: int | None, graphs: int) -> None:
+    """``--max-graphs`` caps the graphs added for precision, so it cannot be below the starting number."""
+    if max_graphs is not None and max_graphs < graphs:
+        raise DesignCalcError(f"--max-graphs must be at least the number of graphs per design point ({graphs}); got {max_graphs}")
+
+
+def fmt(x: float | None, digits: int = 3) -> str:
+    """A number with ``digits`` decimals, or "-" for a missing value."""
+    return "-" if x is None or (isinstance(x, float) and math.isnan(x)) else f"{x:.{digits}f}"
+
+
+def plus_minus(value: float, se: float, digits: int = 3) -> str:
+    """``value ± se``; "-" when there is no value (e.g. a power that was not simulated)."""
+    if value is None or (isinstance(value, float) and math.isnan(value)):
+        return "-"
+    return f"{fmt(value, digits)} ± {fmt(se, digits)}"
+
+
+def _significant(x: float) -> str:
+    return "-" if x is None or not math.isfinite(x) else f"{x:.4g}"
+
+
+def interval(value: float, low: float, high: float) -> str:
+    """``value [low, high]`` with four significant figures; "-" when there is no value."""
+    if value is None or not math.isfinite(value):
+        return "-"
+    if not (math.isfinite(low) and math.isfinite(high)):
+        return _significant(value)
+    return f"{_significant(value)} [{_significant(low)}, {_significant(high)}]"
+
+
+def render_rows_csv(rows: Iterable[Mapping[str, Any]], fields: Sequence[str]) -> str:
+    """A CSV table with a header; fields missing from a row are left empty, extra keys ignored."""
+    buffer = io.StringIO()
+    writer = csv.DictWriter(buffer, fieldnames=list(fields), extrasaction="ignore", lineterminator="\n")
+    writer.writeheader()
+    for row in rows:
+        writer.writerow(row)
+    return buffer.getvalue()
+
+
+def flag_references(flag_lists: Sequence[Sequence[str]]) -> tuple[list[str], list[str]]:
+    """Number the distinct flags of a table's rows: a short cell per row ("1, 3") and the notes in order.
+
+    The solvers' flags are sentences (why a test cannot reach the target,
+    how a search went); printed once below the table they keep it readable.
+    """
+    numbers: dict[str, int] = {}
+    cells = []
+    for flags in flag_lists:
+        for flag in flags:
+            numbers.setdefault(flag, len(numbers) + 1)
+        cells.append(", ".join(str(n) for n in sorted({numbers[f] for f in flags})))
+    return cells, list(numbers)
+
+
+def print_flag_notes(notes: Sequence[str], console: Console) -> None:
+    for number, note in enumerate(notes, start=1):
+        console.print(f"flag {number}: {note}", soft_wrap=True)
+
+
+@contextmanager
+def progress_reporter(console: Console, *, known_total: bool = True) -> Iterator[Callable[[EngineProgress], None]]:
+    """A rich progress display on ``console`` (stderr), yielding the library's progress callback.
+
+    With ``known_total`` (the power table) it is a bar with graphs done of
+    the total and time left; the solvers do not know in advance how many
+    graphs they will simulate (``EngineProgress.total_graphs == 0``), so
+    they get a spinner, the count of graphs simulated and the elapsed time.
+    Nothing is drawn when stderr is not a terminal.
+    """
+    if known_total:
+        columns: tuple[Any, ...] = (
+            TextColumn("simulating"), BarColumn(), MofNCompleteColumn(), TextColumn("graphs"),
+            TimeElapsedColumn(), TextColumn("left"), TimeRemainingColumn(),
+        )
+    else:
+        columns = (SpinnerColumn(), TextColumn("simulating:"), TextColumn("{task.completed:.0f} graphs"), TextColumn("elapsed"), TimeElapsedColumn())
+    with Progress(*columns, console=console, transient=True, disable=not console.is_terminal) as bar:
+        task = bar.add_task("simulate", total=None)
+
+        def report(update: EngineProgress) -> None:
+            total = update.total_graphs if update.total_graphs > 0 else None
+            bar.update(task, total=total, completed=update.finished_graphs)
+
+        yield report
+
+
+def print_notes(result: Any, console: Console) -> None:
+    """The result's warnings, then its cautions, one line each."""
+    for w in result.warnings:
+        console.print(f"warning: {w}", soft_wrap=True)
+    for c in result.cautions:
+        console.print(f"caution: {c}", soft_wrap=True)
+
+
+def planned_test_phrase(design: Any) -> str:
+    """The planned test in words, e.g. "80% power, two-sided alpha 0.05"."""
+    sides = "two-sided" if design.alternative == "two-sided" else f"one-sided ({design.alternative})"
+    return f"{design.target_power:.0%} power, {sides} alpha {design.significance_level:g}"
+
+
+def emit(
+    result: Any,
+    output_format: str,
+    *,
+    table: Callable[[Any, Console], None],
+    csv_text: Callable[[Any], str],
+    partial_message: str,
+) -> None:
+    """Print ``result`` on stdout in the requested format; a partial result ends with exit code 130."""
+    from designcalc.cli.main import stderr_console, stdout_console
+
+    if result.partial:
+        stderr_console().print(partial_message)
+    if output_format == "json":
+        print(json.dumps(result.to_dict(), indent=2, allow_nan=True))
+    elif output_format == "csv":
+        print(csv_text(result), end="")
+    else:
+        table(result, stdout_console())
+    if result.partial:
+        raise typer.Exit(130)
