@@ -172,6 +172,10 @@ def power_runs(scenario: Scenario) -> list[Run]:
     return [Run(ALTERNATIVE, model, ESTIMANDS)] + [Run(null_label(e), model.null_for(e), (e,)) for e in ESTIMANDS]
 
 
+def _available_variances(scenario: Scenario, units: int) -> list[str]:
+    return [v for v in scenario.estimators.direct_variance if v != "two_hop" or units <= TWO_HOP_MAX_UNITS]
+
+
 def planned_keys(scenario: Scenario, units: int) -> list[tuple[str, str, str]]:
     """(estimand, estimator, variance estimator) of every planned test available at ``units``.
 
@@ -179,7 +183,7 @@ def planned_keys(scenario: Scenario, units: int) -> list[tuple[str, str, str]]:
     so it is left out above ``TWO_HOP_MAX_UNITS`` (``two_hop_psd`` is not).
     """
     plan = scenario.estimators
-    variances = [v for v in plan.direct_variance if v != "two_hop" or units <= TWO_HOP_MAX_UNITS]
+    variances = _available_variances(scenario, units)
     keys = [("direct", d, v) for d in plan.direct for v in variances]
     keys += [("spillover", s, _VARIANCE_OF_SPILLOVER[s]) for s in plan.spillover]
     keys += [("total", f"{plan.direct[0]}+{s}", "linearised") for s in plan.spillover]
@@ -278,9 +282,9 @@ def _run_estimators(
             out[key] = spillover(name)
         else:
             # The total pairs the first planned direct estimator (with its first
-            # variance estimator) with a spillover estimator.
+            # variance estimator available at this size) with a spillover estimator.
             first, second = name.split("+", 1)
-            out[key] = combine_total(direct(first, plan.direct_variance[0]), spillover(second))
+            out[key] = combine_total(direct(first, _available_variances(scenario, W.shape[0])[0]), spillover(second))
     return out
 
 
@@ -339,6 +343,24 @@ def control_variance(model: OutcomeModel, theta: np.ndarray) -> float:
     return float(np.var(mean) + np.mean(mean * (1.0 - mean)))
 
 
+def _nbytes(value: object) -> int:
+    if isinstance(value, np.ndarray):
+        return value.nbytes
+    if hasattr(value, "data") and hasattr(value, "indices") and hasattr(value, "indptr"):
+        return value.data.nbytes + value.indices.nbytes + value.indptr.nbytes  # a sparse matrix
+    return 0
+
+
+def _footprint(prepared: _PreparedGraph) -> int:
+    """Bytes a cached graph holds: assignments, noise, adjacency and every array of the estimator preparation."""
+    prep = prepared.prep
+    arrays = [getattr(prep, f) for f in getattr(prep, "__dataclass_fields__", {})]
+    return (
+        prepared.W_all.nbytes + prepared.noise_all.nbytes + _nbytes(prepared.net.adjacency)
+        + sum(_nbytes(a) for a in arrays) + prepared.theta.nbytes
+    )
+
+
 class GraphCache:
     """Prepared graphs of one design point kept in memory between passes, within a byte budget.
 
@@ -357,7 +379,7 @@ class GraphCache:
         if key in self._items:
             return self._items[key]
         prepared = _prepare(scenario, point, graph_index)
-        size = prepared.W_all.nbytes + prepared.noise_all.nbytes + 8 * prepared.net.adjacency.nnz * 2
+        size = _footprint(prepared)
         if self._used + size <= self.max_bytes:
             self._items[key] = prepared
             self._used += size
@@ -365,8 +387,7 @@ class GraphCache:
 
     def forget(self, point: DesignPoint) -> None:
         for key in [k for k in self._items if k[0] == point]:
-            item = self._items.pop(key)
-            self._used -= item.W_all.nbytes + item.noise_all.nbytes + 8 * item.net.adjacency.nnz * 2
+            self._used -= _footprint(self._items.pop(key))
 
 
 def simulate_graph(

@@ -174,6 +174,10 @@ class _Track:
     steps: int = 0
     done: bool = False
     unreachable: str = ""
+    at_bound: bool = False
+    replicates: int = 0
+    failed: int = 0
+    graphs: int = 0
     history: list[tuple[float, float, float, float]] = field(default_factory=list)  # (effect, power, power_se, sd)
     flags: tuple[str, ...] = ()
 
@@ -198,29 +202,36 @@ def _factor_for(track: _Track, target: float, draws: Sequence[GraphDraws], pi: f
     Continuous outcomes: every estimand is linear in the effect
     coefficients, so the factor is a ratio.  Binary outcomes (clipped or
     logistic) are not; the factor is found by root finding on the exact
-    estimands of the simulated graphs.
+    estimands of the simulated graphs.  Probabilities bound a binary
+    effect: beyond the bound the factor of (almost) the largest effect is
+    returned and ``track.at_bound`` set, so the search can tell whether even
+    that effect has the target power.
     """
+    track.at_bound = False
     if track.base.kind == "continuous":
         return target / track.base_effect, target
     estimand = track.key[0]
 
-    def gap(c: float) -> float:
-        return track.direction * _mean_effect(draws, track.base.scaled_for(estimand, c), estimand, pi) - target
+    def effect(c: float) -> float:
+        return track.direction * _mean_effect(draws, track.base.scaled_for(estimand, c), estimand, pi)
 
     high = target / track.base_effect
     for _ in range(40):
-        if gap(high) >= 0:
+        if effect(high) >= target:
             break
         high *= 2
     else:
-        bound = "probabilities clip at 0 and 1" if track.base.link == "identity" else "the logistic link bounds probabilities"
-        raise ModelError(f"no effect of size {target:.4g} exists in this binary outcome model ({bound})")
-    c = scipy.optimize.brentq(gap, 0.0, high, xtol=1e-10 * abs(high), rtol=1e-10)
-    return c, target + gap(c)
+        largest = effect(high)
+        if not largest > 0:
+            raise ModelError("this binary outcome model allows no effect in the tested direction")
+        track.at_bound = True
+        target = 0.999 * largest
+    c = scipy.optimize.brentq(lambda c: effect(c) - target, 0.0, high, xtol=1e-12 * abs(high), rtol=1e-10)
+    return c, effect(c)
 
 
-def _rates(draws: Sequence[GraphDraws], label: str, key: tuple[str, str, str], critical: float, alternative: str) -> tuple[float, float, float, float, float]:
-    """Feasible power (and MC se), SD, mean estimated SE and mean estimate of one key in one run."""
+def _rates(draws: Sequence[GraphDraws], label: str, key: tuple[str, str, str], critical: float, alternative: str) -> tuple[float, float, float, float, float, int, int]:
+    """Feasible power (and MC se), SD, mean estimated SE, mean estimate, replicates and failed replicates of one key."""
     est, se, _ = stack_run(draws, label, key)
     ok = np.isfinite(est) & np.isfinite(se)
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -229,7 +240,19 @@ def _rates(draws: Sequence[GraphDraws], label: str, key: tuple[str, str, str], c
     sd, _ = clustered_sd(np.where(ok, est, np.nan))
     mean_se = float(np.nanmean(np.where(ok, se, np.nan))) if ok.any() else float("nan")
     mean_est = float(np.nanmean(np.where(ok, est, np.nan))) if ok.any() else float("nan")
-    return power, power_se, sd, mean_se, mean_est
+    return power, power_se, sd, mean_se, mean_est, int(ok.sum()), int(est.size - ok.sum())
+
+
+def _stable_se(t: _Track) -> float:
+    """The power's MC se, never below the binomial se (with p(1 - p) >= 1/R).
+
+    A clustered se from few graphs is noisy, and stopping when it happens
+    to be small makes intervals under-cover; the binomial floor (exact for
+    independent replicates) guards the low side and is 0 only never.
+    """
+    R = max(t.replicates, 1)
+    floor = math.sqrt(max(t.power * (1 - t.power), 1 / R) / R)
+    return max(t.power_se, floor) if math.isfinite(t.power_se) else floor
 
 
 def _power_model(t: _Track, alternative: str) -> Callable[[float], float] | None:
@@ -428,7 +451,11 @@ def _design_point(
         tracks.append(track)
         if not (track.base_effect > 0):
             track.done = True
-            track.flags += ("the scenario's effect points against the one-sided test; the MDE was not searched",)
+            if alternative != "two-sided" and direction * base_effect < 0:
+                why = "the scenario's effect points against the one-sided test"
+            else:
+                why = "the scenario's model gives this estimand no effect to scale (it is zero on these graphs)"
+            track.flags += (f"{why}; the MDE was not searched",)
 
     # 2-4. Verify, search, refine.
     draws_by_track: dict[str, list[GraphDraws]] = {}
@@ -446,14 +473,23 @@ def _design_point(
             new = simulate(runs, range(graphs_now))
             for t in active:
                 draws_by_track[t.label] = new
-                t.power, t.power_se, t.sd, t.mean_se, t.mean_estimate = _rates(new, t.label, t.key, t.critical, alternative)
+                t.power, t.power_se, t.sd, t.mean_se, t.mean_estimate, t.replicates, t.failed = _rates(new, t.label, t.key, t.critical, alternative)
+                t.graphs = len(new)
                 t.effect = float(np.mean([d.runs[t.label].estimands.value(t.key[0]) for d in new])) * t.direction
                 if t.steps == 0:
                     t.formula_power, t.formula_power_se = t.power, t.power_se
             still = []
             for t in active:
                 t.history.append((t.effect, t.power, t.power_se, t.sd))
-                agree = abs(t.power - target) <= AGREEMENT_Z * max(t.power_se, 1e-12)
+                agree = abs(t.power - target) <= AGREEMENT_Z * _stable_se(t)
+                if not agree and t.power < target and t.at_bound:
+                    bound = "probabilities clip at 0 and 1" if t.base.link == "identity" else "the logistic link bounds probabilities"
+                    t.unreachable = (
+                        f"not reachable: the largest effect this binary outcome model allows ({t.effect:.4g}; {bound}) "
+                        f"has power {t.power:.3f} ± {_stable_se(t):.3f}"
+                    )
+                    t.done = True
+                    continue
                 if not agree and t.power < target:
                     t.unreachable = _plateau(t.history)
                     if t.unreachable:
@@ -502,7 +538,8 @@ def _design_point(
                 for run in runs:
                     draws_by_track[run.label] = draws_by_track[run.label] + [extra]
             for t in loose:
-                t.power, t.power_se, t.sd, t.mean_se, t.mean_estimate = _rates(draws_by_track[t.label], t.label, t.key, t.critical, alternative)
+                t.power, t.power_se, t.sd, t.mean_se, t.mean_estimate, t.replicates, t.failed = _rates(draws_by_track[t.label], t.label, t.key, t.critical, alternative)
+                t.graphs = len(draws_by_track[t.label])
                 t.effect = t.direction * float(np.mean([d.runs[t.label].estimands.value(t.key[0]) for d in draws_by_track[t.label]]))
 
     records = []
@@ -516,7 +553,8 @@ def _design_point(
         elif verified:
             mde = _estimate(t, target, alternative)
             hw = half_width(t, alternative)
-            method = "searched by simulation" if t.searched else "formula, verified by simulation"
+            final_agree = abs(t.power - target) <= AGREEMENT_Z * _stable_se(t)
+            method = "searched by simulation" if t.searched or not final_agree else "formula, verified by simulation"
             n_graphs = len(draws_by_track[t.label])
         else:
             mde = t.formula
@@ -535,7 +573,18 @@ def _design_point(
         if math.isfinite(size) and not low <= size <= high:
             flags.append(f"size {size:.3f} (MC se {size_se:.3f}) outside [{low:.3f}, {high:.3f}]")
         if verified and not t.unreachable and hw > precision * mde:
-            flags.append(f"precision {hw / mde:.1%} short of the requested {precision:.1%} at max_graphs = {cap}")
+            limit = f"max_graphs = {cap}" if n_graphs >= cap else "the rounds allowed"
+            flags.append(f"precision {hw / mde:.1%} short of the requested {precision:.1%} at {limit}")
+        if verified and not t.unreachable and abs(t.power - target) > AGREEMENT_Z * _stable_se(t):
+            flags.append(
+                f"power at the last simulated effect {t.effect:.4g} is {t.power:.3f} ± {_stable_se(t):.3f}; "
+                "the MDE is the probit-Newton correction from it"
+            )
+        if verified and t.failed:
+            flags.append(
+                f"{t.failed} of {t.failed + t.replicates} replicates had no estimate (an empty arm, or the estimator "
+                "undefined on the graph); power counts the others"
+            )
         records.append(
             MdeRecord(
                 estimand=t.key[0],
@@ -594,9 +643,14 @@ def _plateau(history: list[tuple[float, float, float, float]]) -> str:
 
 
 def half_width(t: _Track, alternative: str) -> float:
-    """Half-width of the 95% MC interval of the MDE: the power's MC error over the slope of the power curve."""
+    """Half-width of the 95% MC interval of the MDE: the power's MC error over the slope of the power curve.
+
+    Uses the stabilised se (``_stable_se``) and a t quantile with graphs - 1
+    degrees of freedom, since the MC se is clustered by graph.
+    """
     slope = float(scipy.stats.norm.pdf(_probit(t.power))) * _probit_slope(t, alternative)
-    return _Z95 * t.power_se / slope if slope > 0 else float("inf")
+    q = float(scipy.stats.t.ppf(0.975, t.graphs - 1)) if t.graphs >= 2 else float("inf")
+    return q * _stable_se(t) / slope if slope > 0 else float("inf")
 
 
 def _estimate(t: _Track, target: float, alternative: str) -> float:

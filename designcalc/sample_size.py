@@ -37,7 +37,17 @@ from typing import Callable, Sequence
 import numpy as np
 import scipy.stats
 
-from designcalc.engine import ALTERNATIVE, ESTIMANDS, DesignPoint, EngineProgress, GraphDraws, Run, planned_keys, simulate_graph
+from designcalc.engine import (
+    ALTERNATIVE,
+    ESTIMANDS,
+    TWO_HOP_MAX_UNITS,
+    DesignPoint,
+    EngineProgress,
+    GraphDraws,
+    Run,
+    planned_keys,
+    simulate_graph,
+)
 from designcalc.inference import critical_value, reference_distribution
 from designcalc.power import CAUTIONS, clustered_mean_se, clustered_sd, provenance, reject, stack_run
 from designcalc.scenario import Scenario
@@ -316,6 +326,7 @@ class _KeyState:
     reason: str = ""
     done: bool = False
     ready: bool = False  # bracketed by the trend: the target lies below the next grid size
+    status: str = ""
 
 
 def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap: int, warnings: list[str]) -> list[SizeRecord]:
@@ -327,59 +338,56 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
     start = min(max(scenario.population.units[0], smallest), limit)
     keys = planned_keys(scenario, start)
     states = {k: _KeyState(k) for k in keys}
+    uppers = {k: _upper_size(scenario, k, start, limit) for k in keys}
 
-    def fits(n: int, key: tuple[str, str, str]) -> bool:
-        return key in planned_keys(scenario, n)
+    def score(n: int, st: _KeyState) -> None:
+        s = sizes.summary(n, st.key)
+        if s is None:
+            return
+        if s.power >= target:
+            st.above = n if st.above is None else min(st.above, n)
+        elif st.above is None or n < st.above:
+            # Once bracketed, a noisy shortfall above the bracket must not invert it.
+            st.below = n if st.below is None else max(st.below, n)
 
-    # 1. Coarse grid: double up (or halve down) until each test is bracketed.
+    # 1. Coarse grid: double up until each test is bracketed, ruled out, or at its largest size.
     sizes.ensure(start, coarse)
     n = start
     while True:
         open_up = []
         for st in states.values():
-            s = sizes.summary(n, st.key)
-            if st.done or s is None:
+            if st.done:
                 continue
-            if s.power >= target:
-                st.above = n if st.above is None else min(st.above, n)
-            else:
-                st.below = n if st.below is None else max(st.below, n)
-                if st.above is None and not st.ready:
-                    open_up.append(st)
-        if not open_up:
-            break
-        grid = sorted(m for m in sizes.draws if m >= start)
+            score(n, st)
+            if st.above is None and not st.ready:
+                open_up.append(st)
         for st in open_up:
-            trend = [(m, sizes.summary(m, st.key)) for m in grid[-3:] if sizes.summary(m, st.key) is not None]
-            st.reason = _plateau_reason(scenario, st.key, trend)
+            trend = _trend_points(sizes, st.key)[-3:]
+            st.reason = _plateau_reason(scenario, st.key, trend, uppers[st.key])
             if st.reason:
                 st.done = True
         open_up = [st for st in open_up if not st.done]
         nxt = min(2 * n, limit)
         # A test whose trend already predicts the target before the next size needs no more grid.
         for st in open_up:
-            if nxt > n and _solve_trend(scenario, sizes, st.key, n, nxt) is not None:
+            if min(nxt, uppers[st.key]) > n and _solve_trend(scenario, sizes, st.key, n, min(nxt, uppers[st.key])) is not None:
                 st.ready = True
         open_up = [st for st in open_up if not st.ready]
-        if not open_up or nxt == n:
-            for st in open_up:
-                s = sizes.summary(n, st.key)
-                st.reason = f"not reachable up to {limit:,} units: simulated power {s.power:.3f} ± {s.power_se:.3f} there"
-                st.done = True
-            break
-        if not _memory_ok(scenario, nxt):
-            for st in open_up:
-                st.reason = (
-                    f"not reachable up to {n:,} units; larger networks were not simulated: at {nxt:,} units the "
-                    f"adjacency would hold more than {MAX_ADJACENCY_ENTRIES:,} entries"
-                )
-                st.done = True
-            break
+        # Tests whose largest simulable size comes before the next grid size get one last look there.
         for st in open_up:
-            if not fits(nxt, st.key):
-                st.reason = f"not reachable up to {n:,} units; this variance estimator is not available at {nxt:,} units"
+            up = uppers[st.key]
+            if up >= nxt:
+                continue
+            if up > n:
+                sizes.ensure(up, coarse)
+                score(up, st)
+            if st.above is None:
+                s = sizes.summary(max(up, n), st.key)
+                st.reason = _limit_reason(scenario, st.key, max(up, n), limit, s)
+                st.status = "not reachable" if up >= limit else "beyond simulation limit"
                 st.done = True
-        if all(st.done for st in open_up):
+        open_up = [st for st in open_up if not st.done and st.above is None]
+        if not open_up or nxt == n:
             break
         sizes.ensure(nxt, coarse)
         n = nxt
@@ -390,67 +398,114 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
         if not low:
             break
         nxt = max(n // 2, smallest)
-        if nxt == n:
+        if nxt == n or scenario.density.target_mean_degree(nxt) >= nxt - 1:
             for st in low:
-                st.reason = f"the target power is reached already at {n} units, the smallest size searched"
+                st.reason = (
+                    f"the target power is reached already at {n} units, the smallest size searched "
+                    "(and the smallest the density rule and design allow)"
+                )
+                st.status = "reached at the smallest size"
                 st.done = True
             break
         sizes.ensure(nxt, coarse)
         for st in low:
-            s = sizes.summary(nxt, st.key)
-            if s.power >= target:
-                st.above = nxt
-            else:
-                st.below = nxt
+            score(nxt, st)
         n = nxt
 
     # 2-3. Propose, verify, refine, per test.
     records = []
     for key, st in states.items():
-        record = _refine(scenario, sizes, st, precision, cap, limit) if not st.done else None
-        if record is None:
-            points = sizes.points(key)
-            trend = [(p.units, sizes.summary(p.units, key)) for p in points]
-            smallest_reached = st.reason.startswith("the target power is reached already")
-            records.append(
-                SizeRecord(
-                    estimand=key[0], estimator=key[1], variance_estimator=key[2], treatment_probability=pi,
-                    status="reached at the smallest size" if smallest_reached else "not reachable",
-                    required_units=st.above if smallest_reached else None,
-                    units_low=float("nan"), units_high=float("nan"), verified_units=None,
-                    verified_power=float("nan"), verified_power_mc_se=float("nan"), relative_precision=float("nan"),
-                    reference_distribution=reference_distribution(scenario.design.reference_distribution, key[0], key[1], points[-1].units if points else start).name,
-                    sd_slope=_sd_slope(trend), reason=st.reason, points=points,
-                )
+        if not st.done:
+            records.append(_refine(scenario, sizes, st, precision, cap, uppers[key]))
+            continue
+        points = sizes.points(key)
+        reached = st.status == "reached at the smallest size"
+        flags = []
+        last = sizes.summary(st.above, key) if reached else None
+        if last is not None and last.failed:
+            flags.append(f"{last.failed} of {last.failed + last.replicates} replicates at {st.above} units had no estimate")
+        records.append(
+            SizeRecord(
+                estimand=key[0], estimator=key[1], variance_estimator=key[2], treatment_probability=pi,
+                status=st.status or "not reachable",
+                required_units=st.above if reached else None,
+                units_low=float("nan"), units_high=float("nan"), verified_units=None,
+                verified_power=float("nan"), verified_power_mc_se=float("nan"), relative_precision=float("nan"),
+                reference_distribution=reference_distribution(scenario.design.reference_distribution, key[0], key[1], points[-1].units if points else start).name,
+                sd_slope=_sd_slope(_trend_points(sizes, key)), reason=st.reason, points=points, flags=tuple(flags),
             )
-        else:
-            records.append(record)
+        )
     return records
 
 
-def _plateau_reason(scenario: Scenario, key: tuple[str, str, str], trend: Sequence[tuple[int, _Summary]]) -> str:
-    """Why the target cannot be reached, when three doubling sizes show the signal-to-noise ratio not growing."""
+def _upper_size(scenario: Scenario, key: tuple[str, str, str], start: int, limit: int) -> int:
+    """Largest size at most ``limit`` at which the test exists and its network fits in memory."""
+    upper = limit
+    if key[0] == "direct" and key[2] == "two_hop":
+        upper = min(upper, TWO_HOP_MAX_UNITS)
+    if not _memory_ok(scenario, upper):
+        lo, hi = start, upper  # n * mean degree grows with n: bisect for the largest size that fits
+        while hi - lo > 1:
+            mid = (lo + hi) // 2
+            lo, hi = (mid, hi) if _memory_ok(scenario, mid) else (lo, mid)
+        upper = lo
+    return max(upper, start)
+
+
+def _limit_reason(scenario: Scenario, key: tuple[str, str, str], n: int, limit: int, s: _Summary | None) -> str:
+    seen = f"simulated power {s.power:.3f} ± {s.power_se:.3f} there" if s is not None else "no estimate there"
+    if n >= limit:
+        return f"not reachable up to {limit:,} units (population.max_units or --max-units): {seen}"
+    if key[2] == "two_hop" and n >= TWO_HOP_MAX_UNITS:
+        return f"not reached by {n:,} units, the largest size at which the two_hop variance is available ({seen}); two_hop_psd works at any size"
+    return (
+        f"not reached by {n:,} units ({seen}); larger networks were not simulated: their adjacency would hold more "
+        f"than {MAX_ADJACENCY_ENTRIES:,} entries"
+    )
+
+
+def _plateau_reason(scenario: Scenario, key: tuple[str, str, str], trend: Sequence[tuple[int, _Summary]], upper: int) -> str:
+    """Why the target cannot be reached by ``upper`` units, judged from the last three sizes (empty: keep searching).
+
+    The effect-to-SD ratio is fitted as a power of n; the test is ruled out
+    when that ratio does not grow at all, or when its extrapolation to
+    ``upper`` predicts power well short of the target.
+    """
+    if trend and all(abs(s.truth) < 1e-12 for _, s in trend):
+        return (
+            f"not reachable: the scenario plans no {key[0]} effect (its true value is 0), "
+            "so no size gives power beyond the test's size"
+        )
     if len(trend) < 3:
         return ""
-    slope = _sd_slope(trend)
-    (n0, s0), (n2, s2) = trend[0], trend[-1]
-    snr0 = abs(s0.mean_estimate) / s0.sd if s0.sd > 0 else 0.0
-    snr2 = abs(s2.mean_estimate) / s2.sd if s2.sd > 0 else 0.0
-    # Normal theory: quadrupling n doubles the ratio; 15% is far below that.
-    if snr2 >= 1.15 * snr0:
+    ratios = [(m, abs(s.mean_estimate) / s.sd) for m, s in trend if s.sd > 0 and math.isfinite(s.sd)]
+    if len(ratios) < 3 or min(r for _, r in ratios) <= 0:
         return ""
-    growth = scenario.density.growth_exponent
+    x = np.log([m for m, _ in ratios])
+    growth, intercept = np.polyfit(x, np.log([r for _, r in ratios]), 1)
+    (n0, _), (n2, s2) = trend[0], trend[-1]
+    design = scenario.design
+    q = critical_value(design.significance_level, design.alternative)
+    at_upper = math.exp(intercept + growth * math.log(upper))
+    predicted = float(scipy.stats.norm.cdf(at_upper - q))
+    if growth > 0.02 and predicted >= design.target_power - 0.1:
+        return ""
+    slope = _sd_slope(trend)
+    growth_rule = scenario.density.growth_exponent
     if slope > -0.1:
         why = (
             f"the estimator's SD stops shrinking as n grows (log-log slope {slope:+.2f} from {n0:,} to {n2:,} units"
-            + (f"; the density rule has growth exponent {growth:g}" if growth > 0 else "")
+            + (f"; the density rule has growth exponent {growth_rule:g}" if growth_rule > 0 else "")
             + ")"
         )
     elif abs(s2.mean_estimate) < 0.5 * abs(s2.truth):
         why = f"bias dominates: the mean estimate {s2.mean_estimate:.4g} is far from the true effect {s2.truth:.4g} and does not approach it as n grows"
     else:
-        why = f"the mean estimate shrinks as fast as its SD (effect/SD {snr0:.2f} at {n0:,} units, {snr2:.2f} at {n2:,})"
-    return f"not reachable: {why}"
+        why = "the mean estimate shrinks nearly as fast as its SD"
+    return (
+        f"not reachable within {upper:,} units: {why}; effect/SD grows like n^{growth:.2f}, "
+        f"which extrapolates to power {predicted:.2f} at {upper:,} units"
+    )
 
 
 def _trend_points(sizes: _Sizes, key: tuple[str, str, str]) -> list[tuple[int, _Summary]]:
@@ -504,11 +559,13 @@ def _pooled(scenario: Scenario, sizes: _Sizes, key: tuple[str, str, str], centre
     target = scenario.design.target_power
     num = den = 0.0
     for n, sm in _trend_points(sizes, key):
-        if abs(math.log(n) - math.log(centre)) > _POOL_WINDOW or not sm.power_se > 0:
+        if abs(math.log(n) - math.log(centre)) > _POOL_WINDOW or sm.replicates == 0:
             continue
+        # Never trust a clustered se below the binomial one (few graphs make it noisy).
+        se = max(sm.power_se if math.isfinite(sm.power_se) else 0.0, math.sqrt(max(sm.power * (1 - sm.power), 1 / sm.replicates) / sm.replicates))
         z = _probit(sm.power)
         dens = float(scipy.stats.norm.pdf(z)) * slope
-        weight = (dens / sm.power_se) ** 2
+        weight = (dens / se) ** 2
         num += weight * (math.log(n) + (_probit(target) - z) / slope)
         den += weight
     if den == 0:
@@ -530,18 +587,22 @@ def _refine(scenario: Scenario, sizes: _Sizes, st: _KeyState, precision: float, 
         guess = math.exp(math.log(low) + min(max(w, 0.0), 1.0) * (math.log(high) - math.log(low)))
     n_v = min(max(_round_units(guess), low + 1), limit)
     log_hat, h = math.log(n_v), float("inf")
-    for _ in range(_MAX_REFINE_STEPS):
+    settled = False
+    for step_index in range(_MAX_REFINE_STEPS):
+        last = step_index == _MAX_REFINE_STEPS - 1
         sizes.ensure(n_v, max(G, sizes.graphs(n_v)))
         slope = _probit_slope(scenario, sizes, key, n_v)
-        log_hat, h, info = _pooled(scenario, sizes, key, n_v, slope)
-        if abs(log_hat - math.log(n_v)) > max(h, precision / 2):
-            # Move, at most by a factor of 2, staying above the size known to fall short.
+        log_hat, h, _ = _pooled(scenario, sizes, key, n_v, slope)
+        moving = abs(log_hat - math.log(n_v)) > max(h, precision / 2)
+        if moving and not last:
+            # Move, at most by a factor of 2, above the size known to fall short, within the test's largest size.
             step = min(max(log_hat - math.log(n_v), -math.log(2)), math.log(2))
             nxt = min(max(_round_units(n_v * math.exp(step)), low + 1), limit)
             if nxt != n_v:
                 n_v = nxt
                 continue
-        if h > precision and sizes.graphs(n_v) < cap:
+        settled = not moving
+        if h > precision and sizes.graphs(n_v) < cap and not last:
             # Information grows with replicates: add what the precision needs, plus 10%.
             now = sizes.graphs(n_v)
             # No usable information yet (h infinite, e.g. power 0 or 1 everywhere near): double.
@@ -552,8 +613,11 @@ def _refine(scenario: Scenario, sizes: _Sizes, st: _KeyState, precision: float, 
     s = sizes.summary(n_v, key)
     n_hat = math.exp(log_hat)
     flags = []
+    if not settled:
+        flags.append(f"the refinement did not settle within {_MAX_REFINE_STEPS} steps: the estimate lies away from the last simulated size")
     if h > precision:
-        flags.append(f"precision ±{h:.1%} short of the requested ±{precision:.1%} (max_graphs = {cap})")
+        why = f"max_graphs = {cap}" if sizes.graphs(n_v) >= cap else f"the {_MAX_REFINE_STEPS} refinement steps allowed"
+        flags.append(f"precision ±{h:.1%} short of the requested ±{precision:.1%} ({why})")
     if s.failed:
         flags.append(f"{s.failed} of {s.failed + s.replicates} replicates at {n_v:,} units had no estimate (an empty arm, or the estimator undefined on the graph); power counts the others")
     if n_hat > limit:
