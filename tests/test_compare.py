@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 
 import pytest
+from scenario_text import no_network_scenario
 from statsmodels.stats.power import NormalIndPower
 
 import designcalc
@@ -13,46 +14,6 @@ from designcalc.compare import DEFAULT_GRID
 # Bloom (1995), Evaluation Review 19(5):547-556: z_{0.975} + z_{0.80} (CHECKS.md §1).
 BLOOM_MULTIPLIER = 2.8016
 UNITS = 1000
-
-
-def _no_network_scenario() -> designcalc.Scenario:
-    """The no-network reduction: one block, mean degree 0.001, no spillover, equal outcome variances (noise SD 1) in both arms."""
-    text = f"""
-[population]
-units = [{UNITS}]
-
-[network]
-model = "blocks"
-block_shares = [1.0]
-block_affinity = [[1.0]]
-
-[network.density]
-mean_degree = 0.001
-reference_units = {UNITS}
-
-[outcome]
-kind = "continuous"
-baseline = 0.0
-noise_sd = 1.0
-direct_effect = 0.3
-spillover_effect = 0.0
-
-[design]
-treatment_probability = [0.5]
-reference_distribution = "normal"
-
-[estimators]
-direct = ["hajek"]
-direct_variance = ["neyman"]
-spillover = ["centred_ht"]
-eigenvectors = 0
-
-[simulation]
-graphs = 40
-assignments_per_graph = 25
-seed = 3
-"""
-    return designcalc.parse_scenario(text, source="no_network.toml")
 
 
 def _allocation_mde(probability: float, units: int = UNITS) -> float:
@@ -73,7 +34,8 @@ def _bernoulli_sd_factor(probability: float, units: int = UNITS) -> float:
 
 @pytest.fixture(scope="module")
 def direct_rows() -> dict[float, designcalc.CompareRow]:
-    result = designcalc.compare_treatment_probabilities(_no_network_scenario())
+    # The no-network reduction: equal outcome variances (noise SD 1) in both arms.
+    result = designcalc.compare_treatment_probabilities(no_network_scenario(units=UNITS))
     rows = result.select(estimand="direct", estimator="hajek", variance_estimator="neyman")
     return {row.treatment_probability: row for row in rows}
 

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from scenario_text import block_model_scenario
 
 import designcalc
 from designcalc.engine import ESTIMANDS, DesignPoint, design_points, simulate_graph
@@ -207,53 +208,23 @@ def _scaling_scenario(
     units: list[int],
     graphs: int,
     assignments: int,
-    spillover: str,
-    blocks: str,
-    block_effects: str,
+    spillover: list[str],
+    block_shares: list[float],
+    block_affinity: list[list[float]],
+    block_effects: list[float],
     eigenvectors: int,
     seed: int,
 ) -> designcalc.Scenario:
-    text = f"""
-[population]
-units = {units}
-
-[network]
-model = "blocks"
-{blocks}
-
-[network.density]
-mean_degree = {mean_degree}
-reference_units = {units[0]}
-growth_exponent = {growth_exponent}
-
-[outcome]
-kind = "continuous"
-baseline = 20.0
-block_effects = {block_effects}
-noise_sd = 1.0
-direct_effect = 0.3
-spillover_effect = 0.5
-interaction = 0.0
-
-[design]
-treatment_probability = [0.5]
-
-[estimators]
-direct = ["hajek"]
-direct_variance = ["neyman"]
-spillover = {spillover}
-centre = 0.0          # effectively uncentred: the outcome level is about 20
-eigenvectors = {eigenvectors}
-
-[simulation]
-graphs = {graphs}
-assignments_per_graph = {assignments}
-seed = {seed}
-"""
-    return designcalc.parse_scenario(text)
+    return block_model_scenario(
+        units=units, mean_degree=mean_degree, graphs=graphs, assignments=assignments, seed=seed,
+        block_shares=block_shares, block_affinity=block_affinity, density={"growth_exponent": growth_exponent},
+        outcome={"baseline": 20.0, "block_effects": block_effects, "direct_effect": 0.3, "spillover_effect": 0.5, "interaction": 0.0},
+        # centre 0 is effectively uncentred: the outcome level is about 20.
+        estimators={"spillover": spillover, "centre": 0.0, "eigenvectors": eigenvectors},
+    )
 
 
-TWO_BLOCKS = "block_shares = [0.5, 0.5]\nblock_affinity = [[4.0, 1.0], [1.0, 4.0]]"
+TWO_BLOCKS = {"block_shares": [0.5, 0.5], "block_affinity": [[4.0, 1.0], [1.0, 4.0]]}
 SCALING_GRAPHS, SCALING_ASSIGNMENTS = 40, 40  # R = 1600 replicates per design point
 
 
@@ -268,9 +239,9 @@ def scaling_runs() -> dict[float, designcalc.PowerResult]:
                 units=[400, 1600],
                 graphs=SCALING_GRAPHS,
                 assignments=SCALING_ASSIGNMENTS,
-                spillover='["centred_ht"]',
-                blocks=TWO_BLOCKS,
-                block_effects="[0.0, 1.0]",
+                spillover=["centred_ht"],
+                **TWO_BLOCKS,
+                block_effects=[0.0, 1.0],
                 eigenvectors=0,
                 seed=5,
             ),
@@ -347,9 +318,10 @@ def test_pc_balancing_removes_the_block_level_variance_of_uncentred_ht() -> None
         units=[400],
         graphs=10,
         assignments=40,
-        spillover='["pc_balancing_corrected", "centred_ht"]',
-        blocks="block_shares = [0.4, 0.3, 0.3]\nblock_affinity = [[8.0, 1.0, 0.5], [1.0, 10.0, 1.0], [0.5, 1.0, 12.0]]",
-        block_effects="[0.0, 5.0, -5.0]",
+        spillover=["pc_balancing_corrected", "centred_ht"],
+        block_shares=[0.4, 0.3, 0.3],
+        block_affinity=[[8.0, 1.0, 0.5], [1.0, 10.0, 1.0], [0.5, 1.0, 12.0]],
+        block_effects=[0.0, 5.0, -5.0],
         eigenvectors=3,
         seed=9,
     )

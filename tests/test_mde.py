@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import json
 import math
 
 import pytest
@@ -10,6 +9,8 @@ import scipy as sp
 import scipy.optimize
 import scipy.special
 import scipy.stats
+from reproducibility import rerun
+from scenario_text import block_model_scenario, no_network_scenario
 from statsmodels.stats.power import NormalIndPower
 from statsmodels.stats.proportion import power_proportions_2indep
 
@@ -19,55 +20,6 @@ from designcalc.mde import AGREEMENT_Z
 # Bloom (1995), Evaluation Review 19(5):547-556: z_{0.975} + z_{0.80} (CHECKS.md §1).
 BLOOM_MULTIPLIER = 2.8016
 Z95 = 1.959963984540054  # the solvers' intervals are +-Z95 Monte Carlo SEs
-
-
-def _no_network_scenario(
-    *,
-    units: int,
-    probabilities: list[float],
-    direct: float = 0.3,
-    reference: str = "normal",
-    graphs: int = 40,
-    assignments: int = 25,
-    seed: int = 3,
-) -> designcalc.Scenario:
-    """The no-network reduction: one block, mean degree 0.001 (nearly every unit isolated), no spillover, noise SD 1."""
-    text = f"""
-[population]
-units = [{units}]
-
-[network]
-model = "blocks"
-block_shares = [1.0]
-block_affinity = [[1.0]]
-
-[network.density]
-mean_degree = 0.001
-reference_units = {units}
-
-[outcome]
-kind = "continuous"
-baseline = 0.0
-noise_sd = 1.0
-direct_effect = {direct}
-spillover_effect = 0.0
-
-[design]
-treatment_probability = {probabilities}
-reference_distribution = "{reference}"
-
-[estimators]
-direct = ["hajek"]
-direct_variance = ["neyman"]
-spillover = ["centred_ht"]
-eigenvectors = 0
-
-[simulation]
-graphs = {graphs}
-assignments_per_graph = {assignments}
-seed = {seed}
-"""
-    return designcalc.parse_scenario(text, source="no_network.toml")
 
 
 def _hajek(result: designcalc.MdeResult, probability: float | None = None) -> designcalc.MdeRecord:
@@ -115,7 +67,7 @@ def test_formula_mde_is_bloom_multiplier_times_se_and_verified_mde_agrees() -> N
     """Under "normal" the formula MDE is 2.8016 x SE; the verified MDE / SE agrees with 2.80 within its MC interval."""
     # N = 1000, P = 1/2; 200 graphs x 25 = 5000 replicates so the SE's MC error
     # is about 1/sqrt(2 * 5000) = 1%.
-    scenario = _no_network_scenario(units=1000, probabilities=[0.5], graphs=200)
+    scenario = no_network_scenario(units=1000, probabilities=[0.5], graphs=200)
     record = _hajek(designcalc.minimum_detectable_effects(scenario))
     assert record.reference_distribution == "normal"
     # Bloom (1995): z_{.975} + z_{.80} = 2.8016 (to the 4 decimals published).
@@ -143,7 +95,7 @@ def test_formula_mde_is_bloom_multiplier_times_se_and_verified_mde_agrees() -> N
 def test_auto_reference_multiplier_is_scipy_t_quantile_sum() -> None:
     """Under "auto" the direct test's multiplier is t_{.975}(n-2) + t_{.80}(n-2) from scipy, and formula MDE / SE equals it."""
     units = 100
-    scenario = _no_network_scenario(units=units, probabilities=[0.5], reference="auto", graphs=10, assignments=10)
+    scenario = no_network_scenario(units=units, probabilities=[0.5], reference="auto", graphs=10, assignments=10)
     record = _hajek(designcalc.minimum_detectable_effects(scenario, verify=False))
     expected = sp.stats.t.ppf(0.975, units - 2) + sp.stats.t.ppf(0.8, units - 2)
     assert record.reference_distribution == f"t({units - 2})"
@@ -167,8 +119,8 @@ DGK_CASES = [(1000, 0.5, 0.177188), (1000, 0.3, 0.193328), (400, 0.2, 0.350198)]
 def dgk_results() -> dict[int, designcalc.MdeResult]:
     """One verified MDE run per N (both probabilities of N = 1000 in one run)."""
     return {
-        1000: designcalc.minimum_detectable_effects(_no_network_scenario(units=1000, probabilities=[0.3, 0.5])),
-        400: designcalc.minimum_detectable_effects(_no_network_scenario(units=400, probabilities=[0.2])),
+        1000: designcalc.minimum_detectable_effects(no_network_scenario(units=1000, probabilities=[0.3, 0.5])),
+        400: designcalc.minimum_detectable_effects(no_network_scenario(units=400, probabilities=[0.2])),
     }
 
 
@@ -230,7 +182,7 @@ def test_spillover_mde_without_a_network_is_not_reachable(dgk_results: dict[int,
 def _community_scenario(
     *,
     spillover_effect: float = 1.0,
-    spillover: str = '["centred_ht", "pc_balancing"]',
+    spillover: tuple[str, ...] = ("centred_ht", "pc_balancing"),
     graphs: int = 20,
     assignments: int = 20,
     seed: int = 5,
@@ -239,45 +191,14 @@ def _community_scenario(
     max_graphs: int = 1000,
 ) -> designcalc.Scenario:
     """Three communities with different outcome levels (an invented demo-like block model), centre fixed at the baseline."""
-    text = f"""
-[population]
-units = [{units}]
-
-[network]
-model = "blocks"
-block_shares = [0.5, 0.3, 0.2]
-block_affinity = [[8.0, 1.0, 0.5], [1.0, 10.0, 1.0], [0.5, 1.0, 14.0]]
-
-[network.density]
-mean_degree = 10
-reference_units = {units}
-
-[outcome]
-kind = "continuous"
-baseline = 20.0
-block_effects = [0.0, 2.0, -1.5]
-noise_sd = 4.0
-direct_effect = 1.2
-spillover_effect = {spillover_effect}
-
-[design]
-treatment_probability = [0.5]
-
-[estimators]
-direct = ["hajek"]
-direct_variance = ["neyman"]
-spillover = {spillover}
-centre = 20.0
-eigenvectors = "auto"
-
-[simulation]
-graphs = {graphs}
-assignments_per_graph = {assignments}
-seed = {seed}
-relative_precision = {relative_precision}
-max_graphs = {max_graphs}
-"""
-    return designcalc.parse_scenario(text, source="communities.toml")
+    return block_model_scenario(
+        units=[units], mean_degree=10, graphs=graphs, assignments=assignments, seed=seed,
+        block_shares=[0.5, 0.3, 0.2], block_affinity=[[8.0, 1.0, 0.5], [1.0, 10.0, 1.0], [0.5, 1.0, 14.0]],
+        outcome={"baseline": 20.0, "block_effects": [0.0, 2.0, -1.5], "noise_sd": 4.0, "direct_effect": 1.2, "spillover_effect": spillover_effect},
+        estimators={"spillover": list(spillover), "centre": 20.0, "eigenvectors": "auto"},
+        simulation={"relative_precision": relative_precision, "max_graphs": max_graphs},
+        source="communities.toml",
+    )
 
 
 @pytest.fixture(scope="module")
@@ -309,7 +230,7 @@ def test_mde_is_searched_when_the_sd_grows_with_the_effect(community_result: des
     # error carried to power by the probit slope phi(z_.8) / SD.
     def power_at(coefficient: float) -> designcalc.PowerRecord:
         run = designcalc.simulate_power(
-            _community_scenario(spillover_effect=coefficient, spillover='["pc_balancing"]'),
+            _community_scenario(spillover_effect=coefficient, spillover=("pc_balancing",)),
             graphs=200,
             assignments_per_graph=20,
             seed=77,
@@ -353,67 +274,26 @@ def test_centred_ht_with_a_drifting_centre_is_not_reachable(community_result: de
 # ---------------------------------------------------------------------------
 # 4. Reproducibility
 # ---------------------------------------------------------------------------
-def _without_time(result: designcalc.MdeResult) -> str:
-    """The result's dict as canonical JSON (NaN-safe equality), without the wall-clock time."""
-    d = result.to_dict()
-    d["provenance"] = {k: v for k, v in d["provenance"].items() if k != "utc_time"}
-    return json.dumps(d, sort_keys=True)
-
-
 def test_mde_result_is_reproducible_and_independent_of_batch_size() -> None:
     """The same scenario and seed give identical MdeResult dicts on a rerun and with batch_size 4 instead of 16."""
     # A real network with every spillover path (search, plateau, adaptive
     # graphs); 10 assignments per graph are split 4 + 4 + 2 by batch_size 4.
     scenario = _community_scenario(units=200, graphs=6, assignments=10, relative_precision=0.2, max_graphs=12)
-    first = _without_time(designcalc.minimum_detectable_effects(scenario, batch_size=16))
-    again = _without_time(designcalc.minimum_detectable_effects(scenario, batch_size=16))
-    small = _without_time(designcalc.minimum_detectable_effects(scenario, batch_size=4))
-    assert first == again
-    assert first == small
-    other = _without_time(designcalc.minimum_detectable_effects(scenario, seed=6))
-    assert other != first
+    runs = rerun(designcalc.minimum_detectable_effects, scenario, other_seed=6)
+    assert runs.first == runs.again
+    assert runs.first == runs.small_batches
+    assert runs.other_seed != runs.first
 
 
 # ---------------------------------------------------------------------------
 # 5. Binary outcomes
 # ---------------------------------------------------------------------------
 def _binary_scenario(*, link: str, baseline: float, direct: float, mean_degree: float, units: int = 1000) -> designcalc.Scenario:
-    text = f"""
-[population]
-units = [{units}]
-
-[network]
-model = "blocks"
-block_shares = [1.0]
-block_affinity = [[1.0]]
-
-[network.density]
-mean_degree = {mean_degree}
-reference_units = {units}
-
-[outcome]
-kind = "binary"
-link = "{link}"
-baseline = {baseline}
-direct_effect = {direct}
-spillover_effect = 0.0
-
-[design]
-treatment_probability = [0.5]
-reference_distribution = "normal"
-
-[estimators]
-direct = ["hajek"]
-direct_variance = ["neyman"]
-spillover = ["centred_ht"]
-eigenvectors = 0
-
-[simulation]
-graphs = 40
-assignments_per_graph = 25
-seed = 4
-"""
-    return designcalc.parse_scenario(text, source="binary.toml")
+    return block_model_scenario(
+        units=[units], mean_degree=mean_degree, seed=4,
+        outcome={"kind": "binary", "link": link, "baseline": baseline, "noise_sd": None, "direct_effect": direct},
+        design={"reference_distribution": "normal"}, source="binary.toml",
+    )
 
 
 def _two_proportion_power(difference: float, control: float, units: int) -> float:

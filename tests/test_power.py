@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 import scipy as sp
 import scipy.stats
+from scenario_text import block_model_scenario
 from statsmodels.stats.power import NormalIndPower
 
 import designcalc
@@ -25,47 +26,18 @@ def _scenario(
     graphs: int,
     assignments: int,
     mean_degree: float = 1.5,
-    blocks: str = "block_shares = [1.0]\nblock_affinity = [[1.0]]",
-    extra_outcome: str = "",
+    block_shares: tuple[float, ...] = (1.0,),
+    block_affinity: tuple[tuple[float, ...], ...] = ((1.0,),),
+    block_effects: list[float] | None = None,
     seed: int = 3,
 ) -> designcalc.Scenario:
-    """A scenario with no spillover and no interaction on a sparse network, built from TOML text."""
-    text = f"""
-[population]
-units = {units}
-
-[network]
-model = "blocks"
-{blocks}
-
-[network.density]
-mean_degree = {mean_degree}
-reference_units = {units[0]}
-
-[outcome]
-kind = "continuous"
-baseline = 0.0
-noise_sd = {noise_sd}
-direct_effect = {direct}
-spillover_effect = 0.0
-interaction = 0.0
-{extra_outcome}
-
-[design]
-treatment_probability = {probabilities}
-
-[estimators]
-direct = ["hajek"]
-direct_variance = ["neyman"]
-spillover = ["centred_ht"]
-eigenvectors = 0
-
-[simulation]
-graphs = {graphs}
-assignments_per_graph = {assignments}
-seed = {seed}
-"""
-    return designcalc.parse_scenario(text, source="test.toml")
+    """A scenario with no spillover and no interaction on a sparse network (one block unless given), built from TOML text."""
+    return block_model_scenario(
+        units=units, mean_degree=mean_degree, probabilities=probabilities, graphs=graphs, assignments=assignments, seed=seed,
+        block_shares=block_shares, block_affinity=block_affinity,
+        outcome={"noise_sd": noise_sd, "direct_effect": direct, "interaction": 0.0, "block_effects": block_effects},
+        source="test.toml",
+    )
 
 
 def _hajek_neyman(result: designcalc.PowerResult) -> designcalc.PowerRecord:
@@ -172,8 +144,9 @@ def test_hajek_neyman_size_and_coverage_are_nominal() -> None:
         graphs=graphs,
         assignments=assignments,
         mean_degree=4.0,
-        blocks="block_shares = [0.5, 0.5]\nblock_affinity = [[5.0, 1.0], [1.0, 5.0]]",
-        extra_outcome="block_effects = [0.0, 1.0]",
+        block_shares=(0.5, 0.5),
+        block_affinity=((5.0, 1.0), (1.0, 5.0)),
+        block_effects=[0.0, 1.0],
         seed=11,
     )
     record = _hajek_neyman(designcalc.simulate_power(scenario))

@@ -2,104 +2,28 @@
 
 from __future__ import annotations
 
-import json
 import math
 
 import pytest
+from reproducibility import rerun
+from scenario_text import block_model_scenario, no_network_scenario
 from statsmodels.stats.power import TTestIndPower
 
 import designcalc
 
 
-def _no_network_scenario(*, units: int, direct: float, seed: int = 3) -> designcalc.Scenario:
-    """The no-network reduction: one block, mean degree 0.001 (nearly every unit isolated), no spillover, noise SD 1.
-
-    The direct effect is then Cohen's d, and the Hajek/Neyman test with
-    t(n - 2) quantiles is the two-sample t test.  The centred HT spillover
-    estimator is planned because some spillover estimator must be (the
-    PC-balancing variant is undefined on a near-empty graph).
-    """
-    text = f"""
-[population]
-units = [{units}]
-
-[network]
-model = "blocks"
-block_shares = [1.0]
-block_affinity = [[1.0]]
-
-[network.density]
-mean_degree = 0.001
-reference_units = {units}
-
-[outcome]
-kind = "continuous"
-baseline = 0.0
-noise_sd = 1.0
-direct_effect = {direct}
-spillover_effect = 0.0
-
-[design]
-treatment_probability = [0.5]
-
-[estimators]
-direct = ["hajek"]
-direct_variance = ["neyman"]
-spillover = ["centred_ht"]
-eigenvectors = 0
-
-[simulation]
-graphs = 40
-assignments_per_graph = 25
-seed = {seed}
-"""
-    return designcalc.parse_scenario(text, source="no_network.toml")
-
-
 def _two_block_scenario(*, growth_exponent: float, centre: float, graphs: int = 20, assignments: int = 20,
                         relative_precision: float = 0.03, max_graphs: int = 1000, max_units: int = 3200) -> designcalc.Scenario:
     """Two communities whose mean outcomes differ (block effects 0 and 2, baseline 5), mean degree 5 at 200 units."""
-    text = f"""
-[population]
-units = [200]
-max_units = {max_units}
-
-[network]
-model = "blocks"
-block_shares = [0.5, 0.5]
-block_affinity = [[4.0, 1.0], [1.0, 4.0]]
-
-[network.density]
-mean_degree = 5.0
-reference_units = 200
-growth_exponent = {growth_exponent}
-
-[outcome]
-kind = "continuous"
-baseline = 5.0
-block_effects = [0.0, 2.0]
-noise_sd = 1.0
-direct_effect = 0.5
-spillover_effect = 1.0
-
-[design]
-treatment_probability = [0.5]
-
-[estimators]
-direct = ["hajek"]
-direct_variance = ["neyman"]
-spillover = ["centred_ht"]
-centre = {centre}
-eigenvectors = 0
-
-[simulation]
-graphs = {graphs}
-assignments_per_graph = {assignments}
-seed = 9
-relative_precision = {relative_precision}
-max_graphs = {max_graphs}
-"""
-    return designcalc.parse_scenario(text, source="two_blocks.toml")
+    return block_model_scenario(
+        units=[200], mean_degree=5.0, graphs=graphs, assignments=assignments, seed=9,
+        block_shares=[0.5, 0.5], block_affinity=[[4.0, 1.0], [1.0, 4.0]],
+        population={"max_units": max_units}, density={"growth_exponent": growth_exponent},
+        outcome={"baseline": 5.0, "block_effects": [0.0, 2.0], "direct_effect": 0.5, "spillover_effect": 1.0},
+        estimators={"centre": centre},
+        simulation={"relative_precision": relative_precision, "max_graphs": max_graphs},
+        source="two_blocks.toml",
+    )
 
 
 # Cohen (1988), Statistical Power Analysis for the Behavioral Sciences, 2nd
@@ -119,7 +43,9 @@ def test_no_network_size_matches_cohen_two_sample_t(effect_size: float, tabled: 
     assert reference == pytest.approx(exact, abs=5e-4)
     assert round(reference) == tabled
 
-    result = designcalc.required_sample_size(_no_network_scenario(units=start, direct=effect_size))
+    # The no-network reduction makes the direct effect Cohen's d, and the
+    # Hajek/Neyman test with t(n - 2) quantiles ("auto") the two-sample t test.
+    result = designcalc.required_sample_size(no_network_scenario(units=start, direct=effect_size, reference="auto"))
     (record,) = result.select(estimand="direct", estimator="hajek", variance_estimator="neyman")
     assert record.status == "reached"
     assert not record.flags
@@ -205,23 +131,13 @@ def test_centred_ht_under_fixed_mean_degree_is_reached() -> None:
     assert record.required_units == pytest.approx(theory, rel=0.25)
 
 
-def _without_time(result: designcalc.SizeResult) -> str:
-    """The result's dict as canonical JSON (NaN-safe equality), without the wall-clock time."""
-    d = result.to_dict()
-    d["provenance"] = {k: v for k, v in d["provenance"].items() if k != "utc_time"}
-    return json.dumps(d, sort_keys=True)
-
-
 def test_size_result_is_reproducible_and_independent_of_batch_size() -> None:
     """The same scenario and seed give identical SizeResult dicts on a rerun and with batch_size 4 instead of 16."""
     # 10 assignments per graph: batches of 4 split them 4 + 4 + 2.
     scenario = _two_block_scenario(growth_exponent=0.0, centre=6.75, graphs=8, assignments=10,
                                    relative_precision=0.2, max_graphs=16, max_units=800)
-    first = _without_time(designcalc.required_sample_size(scenario, batch_size=16))
-    again = _without_time(designcalc.required_sample_size(scenario, batch_size=16))
-    small = _without_time(designcalc.required_sample_size(scenario, batch_size=4))
-    assert first == again
-    assert first == small
+    runs = rerun(designcalc.required_sample_size, scenario, other_seed=10)
+    assert runs.first == runs.again
+    assert runs.first == runs.small_batches
     # A different seed changes the numbers (the check above is not vacuous).
-    other = _without_time(designcalc.required_sample_size(scenario, seed=10))
-    assert other != first
+    assert runs.other_seed != runs.first

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import copy
-import math
 import subprocess
 import sys
 import tomllib
@@ -13,6 +12,7 @@ from typing import Any
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from scenario_text import to_toml
 
 from designcalc.edge_models import BlockModel, KernelModel
 from designcalc.errors import ScenarioError
@@ -268,43 +268,6 @@ def test_load_file_quotes_file_name(tmp_path: Path) -> None:
 # ---------------------------------------------------------------------------
 # Hypothesis: mutate a valid scenario; only ScenarioError may ever escape.
 # ---------------------------------------------------------------------------
-def _toml_value(value: Any) -> str:
-    if isinstance(value, bool):
-        return "true" if value else "false"
-    if isinstance(value, int):
-        return str(value)
-    if isinstance(value, float):
-        if math.isnan(value):
-            return "nan"
-        if math.isinf(value):
-            return "inf" if value > 0 else "-inf"
-        return repr(value)
-    if isinstance(value, str):
-        return '"' + value.replace("\\", "\\\\").replace('"', '\\"').replace("\n", "\\n") + '"'
-    if isinstance(value, list):
-        return "[" + ", ".join(_toml_value(v) for v in value) + "]"
-    if isinstance(value, dict):
-        return "{" + ", ".join(f"{_toml_key(k)} = {_toml_value(v)}" for k, v in value.items()) + "}"
-    raise TypeError(type(value))
-
-
-def _toml_key(key: str) -> str:
-    return key if key.replace("_", "").isalnum() and key.isascii() else _toml_value(key)
-
-
-def _to_toml(data: dict[str, Any], prefix: str = "") -> str:
-    """A tiny TOML writer: scalars and lists inline, sub-tables as [sections]."""
-    scalars = [f"{_toml_key(k)} = {_toml_value(v)}" for k, v in data.items() if not isinstance(v, dict)]
-    out = []
-    if prefix:
-        out.append(f"[{prefix}]")
-    out.extend(scalars)
-    for k, v in data.items():
-        if isinstance(v, dict):
-            out.append(_to_toml(v, f"{prefix}.{_toml_key(k)}" if prefix else _toml_key(k)))
-    return "\n".join(out) + "\n"
-
-
 def _leaf_paths(data: Any, path: tuple = ()) -> list[tuple]:
     if isinstance(data, dict):
         return [p for k, v in data.items() for p in _leaf_paths(v, path + (k,))] or [path]
@@ -356,7 +319,7 @@ def test_mutated_scenarios_only_raise_scenario_error(base: int, data: st.DataObj
     else:
         path = data.draw(st.sampled_from([p for p in _leaf_paths(scenario) if p]), label="replaced leaf")
         _set(scenario, path, data.draw(WRONG_VALUES, label="value"))
-    text = _to_toml(scenario)
+    text = to_toml(scenario)
     try:
         parse_scenario(text)
     except ScenarioError as exc:

@@ -2,21 +2,17 @@
 
 from __future__ import annotations
 
-from pathlib import Path
-from typing import Annotated
-
 import typer
 from rich.table import Table
 
+from designcalc.cli.output import ScenarioFile
 from designcalc.diagnostics import check_scenario
 from designcalc.scenario import load_scenario
 
 
 def register(app: typer.Typer) -> None:
     @app.command("check")
-    def check(
-        scenario: Annotated[Path, typer.Argument(help="Scenario file (TOML).")],
-    ) -> None:
+    def check(scenario: ScenarioFile) -> None:
         """Validate a scenario and show the density, isolates, spectrum, estimands and regime it implies."""
         from designcalc.cli.main import stdout_console
 

@@ -4,28 +4,32 @@ from __future__ import annotations
 
 import math
 from collections.abc import Sequence
-from pathlib import Path
+from functools import partial
 from typing import Annotated
 
 import typer
 from rich.console import Console
-from rich.table import Table
 
 from designcalc.cli.output import (
-    check_format,
-    check_max_graphs,
-    check_precision,
-    check_probabilities,
+    Assignments,
+    OutputFormat,
+    ScenarioFile,
+    Seed,
+    Units,
     emit,
     flag_references,
     fmt,
+    graphs_option,
     interval,
+    load_checked,
+    new_table,
+    partial_mark,
     planned_test_phrase,
     plus_minus,
     print_flag_notes,
-    print_notes,
-    progress_reporter,
-    render_rows_csv,
+    print_footer,
+    records_csv,
+    simulate_with_progress,
 )
 from designcalc.compare import (
     CompareResult,
@@ -36,7 +40,7 @@ from designcalc.compare import (
     parse_test_spec,
 )
 from designcalc.errors import DesignCalcError
-from designcalc.scenario import Scenario, load_scenario
+from designcalc.scenario import Scenario
 
 _CSV_FIELDS = (
     "units", "treatment_probability", "estimand", "estimator", "variance_estimator", "standard_error",
@@ -101,19 +105,16 @@ def resolved_tests(scenario: Scenario, units: Sequence[int], criterion: Criterio
 
 
 def render_table(result: CompareResult, console: Console, *, scenario: Scenario, verify: bool, resolved: Sequence[str] = ()) -> None:
-    partial = "  (PARTIAL: interrupted)" if result.partial else ""
-    console.print(f"[bold]Treatment probabilities compared: {result.scenario_name}[/]{partial}", soft_wrap=True)
+    console.print(f"[bold]Treatment probabilities compared: {result.scenario_name}[/]{partial_mark(result)}", soft_wrap=True)
     flag_cells, flag_notes = flag_references([row.flags for row in result.rows])
     cell_of = {id(row): cell for row, cell in zip(result.rows, flag_cells)}
     blocks: dict[tuple[int, str], list[CompareRow]] = {}
     for row in result.rows:
         blocks.setdefault((row.units, row.estimand), []).append(row)
     for (units, estimand), rows in sorted(blocks.items(), key=lambda item: (item[0][0], ("direct", "spillover", "total").index(item[0][1]))):
-        table = Table(title=f"n = {units:,}: {estimand} effect", title_justify="left")
         columns = ["estimator", "variance", "pi", "SE ± MC se", "MDE [95% MC]", "MDE (SD units)", "size ± MC se"]
         columns += (["method"] if verify else []) + ["mark", "flags"]
-        for col in columns:
-            table.add_column(col, justify="left" if col in ("estimator", "variance", "method", "mark", "flags") else "right")
+        table = new_table(f"n = {units:,}: {estimand} effect", columns, left=("estimator", "variance", "method", "mark", "flags"))
         tests: dict[tuple[str, str], list[CompareRow]] = {}
         for row in rows:
             tests.setdefault((row.estimator, row.variance_estimator), []).append(row)
@@ -143,9 +144,7 @@ def render_table(result: CompareResult, console: Console, *, scenario: Scenario,
     if result.choices:
         # The criterion can be longer than the table is wide: print it as a line, not as a wrapped title.
         console.print(f"Joint criterion: {result.choices[0].criterion}", soft_wrap=True)
-        choices = Table()
-        for col in ("n", "chosen pi", "objective MDE", "note"):
-            choices.add_column(col, justify="left" if col == "note" else "right")
+        choices = new_table(None, ("n", "chosen pi", "objective MDE", "note"), left=("note",))
         for c in result.choices:
             choices.add_row(
                 f"{c.units:,}", "none" if c.treatment_probability is None else f"{c.treatment_probability:g}",
@@ -155,61 +154,53 @@ def render_table(result: CompareResult, console: Console, *, scenario: Scenario,
         if resolved:
             console.print("tests in the criterion: " + "; ".join(resolved) + " (the first planned estimator and variance that match)", soft_wrap=True)
     p = result.provenance
-    console.print(
+    print_footer(
+        result, console,
         f"{p['replicates_per_design_point']} replicates per probability and size ({p['graphs_per_design_point']} graphs x "
-        f"{p['assignments_per_graph']} assignments){' to start with' if verify else ''}; Monte Carlo SEs clustered by graph; "
-        f"seed {p['seed_entropy']}; scenario sha256 {str(p['scenario_sha256'])[:12]}...",
-        soft_wrap=True,
+        f"{p['assignments_per_graph']} assignments){' to start with' if verify else ''}",
     )
-    print_notes(result, console)
 
 
 def render_csv(result: CompareResult) -> str:
     chosen = _chosen(result)
-    rows = []
-    for r in result.rows:
-        row = r.to_dict()
-        row["flags"] = "; ".join(r.flags)
+
+    def chosen_cell(r: CompareRow) -> dict[str, object]:
         # The design a criterion picks is a probability at a size, so every test at it is marked.
-        row["chosen_by_criterion"] = "" if not result.choices else chosen.get(r.units) == r.treatment_probability
-        rows.append(row)
-    return render_rows_csv(rows, _CSV_FIELDS)
+        return {"chosen_by_criterion": "" if not result.choices else chosen.get(r.units) == r.treatment_probability}
+
+    return records_csv(result.rows, _CSV_FIELDS, extra=chosen_cell)
 
 
 def register(app: typer.Typer) -> None:
     @app.command("compare")
     def compare(
-        scenario: Annotated[Path, typer.Argument(help="Scenario file (TOML).")],
+        scenario: ScenarioFile,
         probabilities: Annotated[list[float] | None, typer.Option("--probabilities", "-p", help="Treatment probabilities in (0, 1) to compare; repeat for several (default 0.1, 0.2, ..., 0.9 and the scenario's).")] = None,
-        units: Annotated[list[int] | None, typer.Option("--units", "-n", min=4, max=2_000_000, help="Network size(s), overriding population.units; repeat for several.")] = None,
-        graphs: Annotated[int | None, typer.Option(min=2, max=1_000_000, help="Graphs per design point.")] = None,
-        assignments: Annotated[int | None, typer.Option(min=1, max=100_000, help="Assignments per graph.")] = None,
-        seed: Annotated[int | None, typer.Option(min=0, help="Root seed, overriding simulation.seed.")] = None,
+        units: Units = None,
+        graphs: Annotated[int | None, graphs_option("Graphs per design point.")] = None,
+        assignments: Assignments = None,
+        seed: Seed = None,
         verify: Annotated[bool, typer.Option("--verify/--no-verify", help="Verify every MDE by simulation, as designcalc mde does (slower); default: the formula MDE.")] = False,
         precision: Annotated[float | None, typer.Option(help="With --verify: target half-width of each MDE's 95% Monte Carlo interval relative to the MDE, in (0, 0.5]; overrides simulation.relative_precision.")] = None,
-        max_graphs: Annotated[int | None, typer.Option(min=2, max=1_000_000, help="With --verify: most graphs per design point spent on precision; overrides simulation.max_graphs.")] = None,
+        max_graphs: Annotated[int | None, graphs_option("With --verify: most graphs per design point spent on precision; overrides simulation.max_graphs.")] = None,
         objective: Annotated[str | None, typer.Option(help="Pick one probability per size: the smallest MDE of this test, ESTIMAND[:ESTIMATOR[:VARIANCE]].")] = None,
         cap: Annotated[list[str] | None, typer.Option(help="With --objective: only probabilities where MDE(SPEC) <= VALUE (outcome units), as SPEC=VALUE; repeat for several.")] = None,
-        output_format: Annotated[str, typer.Option("--format", help="table, json or csv.")] = "table",
+        output_format: OutputFormat = "table",
     ) -> None:
         """Compare treatment probabilities by SE, MDE and test size for every planned test, and pick one by a joint criterion."""
-        from designcalc.cli.main import stderr_console
-
-        check_format(output_format)
-        check_probabilities(probabilities, "--probabilities")
-        check_precision(precision)
-        loaded = load_scenario(scenario)
-        check_max_graphs(max_graphs, graphs if graphs is not None else loaded.simulation.graphs)
+        loaded = load_checked(
+            scenario, output_format, probabilities, probability_option="--probabilities", precision=precision,
+            max_graphs=max_graphs, graphs=graphs,
+        )
         sizes = units or loaded.population.units
         criterion = build_criterion(loaded, sizes, objective, cap or ())
-        with progress_reporter(stderr_console(), known_total=False) as report:
-            result = compare_treatment_probabilities(
-                loaded, probabilities=probabilities, units=units, criterion=criterion, verify=verify, graphs=graphs,
-                assignments_per_graph=assignments, seed=seed, relative_precision=precision, max_graphs=max_graphs,
-                progress=report,
-            )
+        solve = partial(
+            compare_treatment_probabilities, loaded, probabilities=probabilities, units=units, criterion=criterion,
+            verify=verify, graphs=graphs, assignments_per_graph=assignments, seed=seed, relative_precision=precision,
+            max_graphs=max_graphs,
+        )
 
         def table(res: CompareResult, console: Console) -> None:
             render_table(res, console, scenario=loaded, verify=verify, resolved=resolved_tests(loaded, sizes, criterion))
 
-        emit(result, output_format, table=table, csv_text=render_csv, partial_message="interrupted: showing the design points that finished")
+        emit(simulate_with_progress(solve, known_total=False), output_format, table=table, csv_text=render_csv)

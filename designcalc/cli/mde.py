@@ -2,32 +2,38 @@
 
 from __future__ import annotations
 
-import math
-from pathlib import Path
+from functools import partial
 from typing import Annotated
 
 import typer
 from rich.console import Console
-from rich.table import Table
 
 from designcalc.cli.output import (
-    check_format,
-    check_max_graphs,
-    check_precision,
-    check_probabilities,
+    Assignments,
+    OutputFormat,
+    ScenarioFile,
+    Seed,
+    TreatmentProbabilities,
+    Units,
     emit,
     flag_references,
     fmt,
+    graphs_option,
     interval,
+    load_checked,
+    new_table,
+    partial_mark,
     planned_test_phrase,
     plus_minus,
+    precision_settings,
     print_flag_notes,
-    print_notes,
-    progress_reporter,
-    render_rows_csv,
+    print_footer,
+    records_csv,
+    simulate_with_progress,
+    span,
 )
 from designcalc.mde import AGREEMENT_Z, MdeRecord, MdeResult, minimum_detectable_effects
-from designcalc.scenario import Scenario, load_scenario
+from designcalc.scenario import Scenario
 
 _CSV_FIELDS = (
     "estimand", "estimator", "variance_estimator", "units", "treatment_probability", "reference_distribution",
@@ -46,28 +52,19 @@ _METHOD = {
 }
 
 
-def _span(values: list[float], text: str = "{:.1%}") -> str:
-    """"a" or "a-b" for the finite values, "-" when there are none."""
-    finite = sorted(v for v in values if math.isfinite(v))
-    if not finite:
-        return "-"
-    low, high = text.format(finite[0]), text.format(finite[-1])
-    return low if low == high else f"{low}-{high}"
-
-
 def _method_cell(record: MdeRecord) -> str:
     return _METHOD.get(record.method, record.method)
 
 
 def render_table(result: MdeResult, console: Console, *, scenario: Scenario, precision: float, max_graphs: int) -> None:
-    title = f"Minimum detectable effects: {result.scenario_name}" + ("  (PARTIAL: interrupted)" if result.partial else "")
-    table = Table(title=title, title_justify="left")
-    columns = (
-        "estimand", "estimator", "variance", "n", "pi", "reference", "SE ± MC se", "MDE [95% MC]", "MDE (SD units)",
-        "verified power ± MC se", "size", "method", "flags",
+    table = new_table(
+        f"Minimum detectable effects: {result.scenario_name}" + partial_mark(result),
+        (
+            "estimand", "estimator", "variance", "n", "pi", "reference", "SE ± MC se", "MDE [95% MC]", "MDE (SD units)",
+            "verified power ± MC se", "size", "method", "flags",
+        ),
+        left=("estimand", "estimator", "variance", "reference", "method", "flags"),
     )
-    for col in columns:
-        table.add_column(col, justify="left" if col in ("estimand", "estimator", "variance", "reference", "method", "flags") else "right")
     flag_cells, flag_notes = flag_references([r.flags for r in result.records])
     for r, flag_cell in zip(result.records, flag_cells):
         table.add_row(
@@ -86,7 +83,7 @@ def render_table(result: MdeResult, console: Console, *, scenario: Scenario, pre
     console.print(
         f"MDE: the true effect (in outcome units, {direction}) at which the planned test has {planned_test_phrase(design)}; "
         "MDE (SD units) divides it by the SD of the outcome when nobody is treated "
-        f"({_span([r.control_sd for r in result.records], '{:.3g}')}). "
+        f"({span([r.control_sd for r in result.records], '{:.3g}')}). "
         "SE: the estimator's Monte Carlo SD when the tested effect is zero; size: the test's rejection rate there.",
         soft_wrap=True,
     )
@@ -101,60 +98,43 @@ def render_table(result: MdeResult, console: Console, *, scenario: Scenario, pre
     reached = [r.relative_precision for r in result.records if r.method != "formula (not verified)"]
     if reached:
         console.print(
-            f"precision: 95% MC interval half-width {_span(reached)} of the MDE (requested {precision:.1%}, "
+            f"precision: 95% MC interval half-width {span(reached, '{:.1%}')} of the MDE (requested {precision:.1%}, "
             f"at most {max_graphs} graphs per design point)", soft_wrap=True,
         )
-    p = result.provenance
-    console.print(
-        f"replicates per test: {_span([float(r.replicates) for r in result.records], '{:.0f}')} "
-        f"({_span([float(r.graphs) for r in result.records], '{:.0f}')} graphs x {p['assignments_per_graph']} assignments); "
-        f"Monte Carlo SEs clustered by graph; seed {p['seed_entropy']}; scenario sha256 {str(p['scenario_sha256'])[:12]}...",
-        soft_wrap=True,
+    print_footer(
+        result, console,
+        f"replicates per test: {span([float(r.replicates) for r in result.records], '{:.0f}')} "
+        f"({span([float(r.graphs) for r in result.records], '{:.0f}')} graphs x {result.provenance['assignments_per_graph']} assignments)",
     )
-    print_notes(result, console)
 
 
 def render_csv(result: MdeResult) -> str:
-    rows = []
-    for r in result.records:
-        row = r.to_dict()
-        row["flags"] = "; ".join(r.flags)
-        rows.append(row)
-    return render_rows_csv(rows, _CSV_FIELDS)
+    return records_csv(result.records, _CSV_FIELDS)
 
 
 def register(app: typer.Typer) -> None:
     @app.command("mde")
     def mde(
-        scenario: Annotated[Path, typer.Argument(help="Scenario file (TOML).")],
-        units: Annotated[list[int] | None, typer.Option("--units", "-n", min=4, max=2_000_000, help="Network size(s), overriding population.units; repeat for several.")] = None,
-        treatment_probability: Annotated[list[float] | None, typer.Option("--treatment-probability", "-p", help="Treatment probability(ies) in (0, 1); repeat for several.")] = None,
-        graphs: Annotated[int | None, typer.Option(min=2, max=1_000_000, help="Graphs per design point to start with.")] = None,
-        assignments: Annotated[int | None, typer.Option(min=1, max=100_000, help="Assignments per graph.")] = None,
-        seed: Annotated[int | None, typer.Option(min=0, help="Root seed, overriding simulation.seed.")] = None,
+        scenario: ScenarioFile,
+        units: Units = None,
+        treatment_probability: TreatmentProbabilities = None,
+        graphs: Annotated[int | None, graphs_option("Graphs per design point to start with.")] = None,
+        assignments: Assignments = None,
+        seed: Seed = None,
         precision: Annotated[float | None, typer.Option(help="Target half-width of the MDE's 95% Monte Carlo interval relative to the MDE, in (0, 0.5]; overrides simulation.relative_precision.")] = None,
-        max_graphs: Annotated[int | None, typer.Option(min=2, max=1_000_000, help="Most graphs per design point spent on precision; overrides simulation.max_graphs.")] = None,
+        max_graphs: Annotated[int | None, graphs_option("Most graphs per design point spent on precision; overrides simulation.max_graphs.")] = None,
         verify: Annotated[bool, typer.Option("--verify/--no-verify", help="Verify each formula MDE by simulation (default), or report the formula only.")] = True,
-        output_format: Annotated[str, typer.Option("--format", help="table, json or csv.")] = "table",
+        output_format: OutputFormat = "table",
     ) -> None:
         """Minimum detectable direct, spillover and total effects of every planned test, verified by simulation."""
-        from designcalc.cli.main import stderr_console
-
-        check_format(output_format)
-        check_probabilities(treatment_probability, "--treatment-probability")
-        check_precision(precision)
-        loaded = load_scenario(scenario)
-        check_max_graphs(max_graphs, graphs if graphs is not None else loaded.simulation.graphs)
-        with progress_reporter(stderr_console(), known_total=False) as report:
-            result = minimum_detectable_effects(
-                loaded, units=units, treatment_probabilities=treatment_probability, graphs=graphs,
-                assignments_per_graph=assignments, seed=seed, relative_precision=precision, max_graphs=max_graphs,
-                verify=verify, progress=report,
-            )
-        requested = loaded.simulation.relative_precision if precision is None else precision
-        cap = max(loaded.simulation.max_graphs if max_graphs is None else max_graphs, graphs or loaded.simulation.graphs)
+        loaded = load_checked(scenario, output_format, treatment_probability, precision=precision, max_graphs=max_graphs, graphs=graphs)
+        solve = partial(
+            minimum_detectable_effects, loaded, units=units, treatment_probabilities=treatment_probability, graphs=graphs,
+            assignments_per_graph=assignments, seed=seed, relative_precision=precision, max_graphs=max_graphs, verify=verify,
+        )
+        requested, cap = precision_settings(loaded, precision, max_graphs, graphs)
 
         def table(res: MdeResult, console: Console) -> None:
             render_table(res, console, scenario=loaded, precision=requested, max_graphs=cap)
 
-        emit(result, output_format, table=table, csv_text=render_csv, partial_message="interrupted: showing the design points that finished")
+        emit(simulate_with_progress(solve, known_total=False), output_format, table=table, csv_text=render_csv)

@@ -1,7 +1,8 @@
-"""What every command shares: option checks, number formats, CSV, the progress display, footers.
+"""What every command shares: options, option checks, number formats, tables, CSV, the progress display, footers.
 
-Nothing here computes a statistic; it only checks options, draws the
-library's progress callback and prints results the library returned.
+Nothing here computes a statistic; it only declares and checks options,
+draws the library's progress callback and prints results the library
+returned.
 """
 
 from __future__ import annotations
@@ -10,9 +11,10 @@ import csv
 import io
 import json
 import math
-from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Collection, Iterable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
-from typing import Any
+from pathlib import Path
+from typing import Annotated, Any
 
 import typer
 from rich.console import Console
@@ -25,12 +27,20 @@ from rich.progress import (
     TimeElapsedColumn,
     TimeRemainingColumn,
 )
+from rich.table import Table
 
 from designcalc.engine import EngineProgress
 from designcalc.errors import DesignCalcError
+from designcalc.scenario import Scenario, load_scenario
 
 __all__ = [
     "FORMATS",
+    "Assignments",
+    "OutputFormat",
+    "ScenarioFile",
+    "Seed",
+    "TreatmentProbabilities",
+    "Units",
     "check_format",
     "check_max_graphs",
     "check_precision",
@@ -38,16 +48,44 @@ __all__ = [
     "emit",
     "flag_references",
     "fmt",
+    "graphs_option",
     "interval",
+    "load_checked",
+    "new_table",
+    "partial_mark",
     "planned_test_phrase",
     "plus_minus",
+    "precision_settings",
     "print_flag_notes",
+    "print_footer",
     "print_notes",
     "progress_reporter",
+    "records_csv",
     "render_rows_csv",
+    "simulate_with_progress",
+    "span",
 ]
 
 FORMATS = ("table", "json", "csv")
+
+# Options that mean the same in every command that has them, declared once.
+ScenarioFile = Annotated[Path, typer.Argument(help="Scenario file (TOML).")]
+Units = Annotated[
+    list[int] | None,
+    typer.Option("--units", "-n", min=4, max=2_000_000, help="Network size(s), overriding population.units; repeat for several."),
+]
+TreatmentProbabilities = Annotated[
+    list[float] | None,
+    typer.Option("--treatment-probability", "-p", help="Treatment probability(ies) in (0, 1); repeat for several."),
+]
+Assignments = Annotated[int | None, typer.Option(min=1, max=100_000, help="Assignments per graph.")]
+Seed = Annotated[int | None, typer.Option(min=0, help="Root seed, overriding simulation.seed.")]
+OutputFormat = Annotated[str, typer.Option("--format", help="table, json or csv.")]
+
+
+def graphs_option(help_text: str) -> Any:
+    """A number of graphs (``--graphs``, ``--max-graphs``): the same range everywhere, help in the command's terms."""
+    return typer.Option(min=2, max=1_000_000, help=help_text)
 
 
 def check_format(output_format: str) -> None:
@@ -78,6 +116,36 @@ def check_max_graphs(max_graphs: int | None, graphs: int) -> None:
         raise DesignCalcError(f"--max-graphs must be at least the number of graphs per design point ({graphs}); got {max_graphs}")
 
 
+def load_checked(
+    path: Path,
+    output_format: str,
+    probabilities: Sequence[float] | None,
+    *,
+    probability_option: str = "--treatment-probability",
+    precision: float | None = None,
+    max_graphs: int | None = None,
+    graphs: int | None = None,
+) -> Scenario:
+    """Check a command's options, load its scenario, then check what needs the scenario (``--max-graphs``).
+
+    The options are checked before the file is read, so a wrong option is
+    reported even when the file is wrong too.
+    """
+    check_format(output_format)
+    check_probabilities(probabilities, probability_option)
+    check_precision(precision)
+    scenario = load_scenario(path)
+    check_max_graphs(max_graphs, graphs if graphs is not None else scenario.simulation.graphs)
+    return scenario
+
+
+def precision_settings(scenario: Scenario, precision: float | None, max_graphs: int | None, graphs: int | None) -> tuple[float, int]:
+    """The relative precision asked for and the most graphs per design point, as a solver's footer states them."""
+    requested = scenario.simulation.relative_precision if precision is None else precision
+    cap = max(scenario.simulation.max_graphs if max_graphs is None else max_graphs, graphs or scenario.simulation.graphs)
+    return requested, cap
+
+
 def fmt(x: float | None, digits: int = 3) -> str:
     """A number with ``digits`` decimals, or "-" for a missing value."""
     return "-" if x is None or (isinstance(x, float) and math.isnan(x)) else f"{x:.{digits}f}"
@@ -103,6 +171,28 @@ def interval(value: float, low: float, high: float) -> str:
     return f"{_significant(value)} [{_significant(low)}, {_significant(high)}]"
 
 
+def span(values: Iterable[float], text: str) -> str:
+    """"a" or "a-b" for the smallest and largest finite values in the format ``text``, "-" when there are none."""
+    finite = sorted(v for v in values if math.isfinite(v))
+    if not finite:
+        return "-"
+    low, high = text.format(finite[0]), text.format(finite[-1])
+    return low if low == high else f"{low}-{high}"
+
+
+def partial_mark(result: Any) -> str:
+    """The suffix of a table's title when the run was interrupted."""
+    return "  (PARTIAL: interrupted)" if result.partial else ""
+
+
+def new_table(title: str | None, columns: Sequence[str], left: Collection[str]) -> Table:
+    """A table with a left-justified title; the ``left`` columns (text) left-aligned, the others (numbers) right-aligned."""
+    table = Table(title=title, title_justify="left")
+    for col in columns:
+        table.add_column(col, justify="left" if col in left else "right")
+    return table
+
+
 def render_rows_csv(rows: Iterable[Mapping[str, Any]], fields: Sequence[str]) -> str:
     """A CSV table with a header; fields missing from a row are left empty, extra keys ignored."""
     buffer = io.StringIO()
@@ -111,6 +201,20 @@ def render_rows_csv(rows: Iterable[Mapping[str, Any]], fields: Sequence[str]) ->
     for row in rows:
         writer.writerow(row)
     return buffer.getvalue()
+
+
+def records_csv(
+    records: Iterable[Any], fields: Sequence[str], extra: Callable[[Any], Mapping[str, Any]] | None = None
+) -> str:
+    """A CSV of result records: each record's ``to_dict()``, its flags joined by "; ", and ``extra(record)``'s columns."""
+    rows = []
+    for record in records:
+        row = record.to_dict()
+        row["flags"] = "; ".join(record.flags)
+        if extra is not None:
+            row.update(extra(record))
+        rows.append(row)
+    return render_rows_csv(rows, fields)
 
 
 def flag_references(flag_lists: Sequence[Sequence[str]]) -> tuple[list[str], list[str]]:
@@ -168,10 +272,31 @@ def print_notes(result: Any, console: Console) -> None:
         console.print(f"caution: {c}", soft_wrap=True)
 
 
+def print_footer(result: Any, console: Console, replicates: str, *, after: Sequence[str] = ()) -> None:
+    """A table's closing lines: the replicates with the seed and scenario hash, the lines ``after``, the notes.
+
+    ``replicates`` says how the Monte Carlo was run (e.g. "12 replicates per
+    design point (3 graphs x 4 assignments)"); the notes are the result's
+    warnings and cautions.
+    """
+    p = result.provenance
+    console.print(
+        f"{replicates}; Monte Carlo SEs clustered by graph; seed {p['seed_entropy']}; "
+        f"scenario sha256 {str(p['scenario_sha256'])[:12]}...",
+        soft_wrap=True,
+    )
+    for line in after:
+        console.print(line, soft_wrap=True)
+    print_notes(result, console)
+
+
 def planned_test_phrase(design: Any) -> str:
     """The planned test in words, e.g. "80% power, two-sided alpha 0.05"."""
     sides = "two-sided" if design.alternative == "two-sided" else f"one-sided ({design.alternative})"
     return f"{design.target_power:.0%} power, {sides} alpha {design.significance_level:g}"
+
+
+_PARTIAL_MESSAGE = "interrupted: showing the design points that finished"
 
 
 def emit(
@@ -180,7 +305,7 @@ def emit(
     *,
     table: Callable[[Any, Console], None],
     csv_text: Callable[[Any], str],
-    partial_message: str,
+    partial_message: str = _PARTIAL_MESSAGE,
 ) -> None:
     """Print ``result`` on stdout in the requested format; a partial result ends with exit code 130."""
     from designcalc.cli.main import stderr_console, stdout_console
@@ -195,3 +320,12 @@ def emit(
         table(result, stdout_console())
     if result.partial:
         raise typer.Exit(130)
+
+
+
+def simulate_with_progress(solve: Callable[..., Any], *, known_total: bool) -> Any:
+    """``solve(progress=...)`` under the progress display on stderr (see :func:`progress_reporter`); its result."""
+    from designcalc.cli.main import stderr_console
+
+    with progress_reporter(stderr_console(), known_total=known_total) as report:
+        return solve(progress=report)
