@@ -45,6 +45,7 @@ from designcalc.engine import (
     EngineProgress,
     GraphDraws,
     Run,
+    null_label,
     planned_keys,
     simulate_graph,
 )
@@ -94,6 +95,8 @@ class SizeRecord:
     reason: str
     points: tuple[SizePoint, ...] = ()
     flags: tuple[str, ...] = ()
+    size: float = float("nan")  # the feasible test's rejection rate under the null, at verified_units
+    size_mc_se: float = float("nan")
 
     def to_dict(self) -> dict[str, object]:
         d = asdict(self)
@@ -170,6 +173,23 @@ class _Sizes:
 
     def graphs(self, n: int) -> int:
         return len(self.draws.get(n, ()))
+
+    def null_size(self, n: int, key: tuple[str, str, str], graphs: int) -> tuple[float, float]:
+        """Rejection rate (and MC se) of the test under the null of its estimand at n, on the same graphs and assignments."""
+        label = null_label(key[0])
+        run = [Run(label, self.scenario.outcome.null_for(key[0]), (key[0],), frozenset({key}))]
+        point = DesignPoint(n, self.pi)
+        draws = []
+        for g in range(graphs):
+            draws.append(simulate_graph(self.scenario, point, g, runs=run, batch_size=self.batch_size))
+            self.tick()
+        design = self.scenario.design
+        reference = reference_distribution(design.reference_distribution, key[0], key[1], n)
+        critical = critical_value(design.significance_level, design.alternative, reference.df)
+        est, se, _ = stack_run(draws, label, key)
+        ok = np.isfinite(est) & np.isfinite(se)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return clustered_mean_se(np.where(ok, reject(est / se, critical, design.alternative).astype(float), np.nan))
 
     def summary(self, n: int, key: tuple[str, str, str]) -> _Summary | None:
         draws = self.draws.get(n)
@@ -624,11 +644,19 @@ def _refine(scenario: Scenario, sizes: _Sizes, st: _KeyState, precision: float, 
         flags.append(f"the estimate lies beyond the search limit of {limit:,} units")
     points = sizes.points(key)
     reference = reference_distribution(scenario.design.reference_distribution, key[0], key[1], n_v)
+    # The test's size at the verified n: an over-rejecting test reaches its power "too early".
+    size, size_se = sizes.null_size(n_v, key, G)
+    alpha = scenario.design.significance_level
+    if math.isfinite(size) and (size - 2 * size_se > 1.4 * alpha or size + 2 * size_se < 0.6 * alpha):
+        flags.append(
+            f"the test's size at {n_v:,} units is {size:.3f} (MC se {size_se:.3f}), outside "
+            f"[{0.6 * alpha:.3f}, {1.4 * alpha:.3f}]: its power, and so this n, are not trustworthy"
+        )
     return SizeRecord(
         estimand=key[0], estimator=key[1], variance_estimator=key[2], treatment_probability=sizes.pi,
         status="reached", required_units=math.ceil(n_hat), units_low=n_hat * math.exp(-h), units_high=n_hat * math.exp(h),
         verified_units=n_v, verified_power=s.power, verified_power_mc_se=s.power_se, relative_precision=h,
         reference_distribution=reference.name,
         sd_slope=_sd_slope(_trend_points(sizes, key)),
-        reason="", points=points, flags=tuple(flags),
+        reason="", points=points, flags=tuple(flags), size=size, size_mc_se=size_se,
     )

@@ -73,6 +73,9 @@ def test_no_network_size_matches_cohen_two_sample_t(effect_size: float, tabled: 
     # CHECKS.md §3).
     widened = 4 / 1.959963984540054 * record.relative_precision
     assert n_hat / 2 * math.exp(-widened) <= exact + 0.5 <= n_hat / 2 * math.exp(widened)
+    # The size reported at the verified n is the two-sample test's nominal
+    # 0.05 (its level by construction; Cohen 1988 ch. 2): within 4 MC SEs.
+    assert abs(record.size - 0.05) <= 4 * record.size_mc_se
 
 
 @pytest.mark.statistical
