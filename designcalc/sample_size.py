@@ -163,16 +163,26 @@ class _Sizes:
         self.tick = tick
         self.draws: dict[int, list[GraphDraws]] = {}
         self.run = [Run(ALTERNATIVE, scenario.outcome, ESTIMANDS)]
+        # Each test sees only the sizes (and graph counts) its own search asked
+        # for, so its answer does not depend on which other tests are planned;
+        # the draws themselves are shared (content-keyed, so identical anyway).
+        self.paths: dict[tuple[str, str, str], dict[int, int]] = {}
 
-    def ensure(self, n: int, graphs: int) -> None:
+    def ensure(self, n: int, graphs: int, keys: Sequence[tuple[str, str, str]] = ()) -> None:
         have = self.draws.setdefault(n, [])
         point = DesignPoint(n, self.pi)
         for g in range(len(have), graphs):
             have.append(simulate_graph(self.scenario, point, g, runs=self.run, batch_size=self.batch_size))
             self.tick()
+        for key in keys:
+            path = self.paths.setdefault(key, {})
+            path[n] = max(path.get(n, 0), graphs)
 
-    def graphs(self, n: int) -> int:
-        return len(self.draws.get(n, ()))
+    def graphs(self, n: int, key: tuple[str, str, str]) -> int:
+        return self.paths.get(key, {}).get(n, 0)
+
+    def sizes_of(self, key: tuple[str, str, str]) -> list[int]:
+        return sorted(self.paths.get(key, {}))
 
     def null_size(self, n: int, key: tuple[str, str, str], graphs: int) -> tuple[float, float]:
         """Rejection rate (and MC se) of the test under the null of its estimand at n, on the same graphs and assignments."""
@@ -192,7 +202,9 @@ class _Sizes:
             return clustered_mean_se(np.where(ok, reject(est / se, critical, design.alternative).astype(float), np.nan))
 
     def summary(self, n: int, key: tuple[str, str, str]) -> _Summary | None:
-        draws = self.draws.get(n)
+        """The test's summary at n over the graphs its own search asked for (None if it never asked)."""
+        count = self.graphs(n, key)
+        draws = self.draws.get(n, [])[:count]
         if not draws or key not in draws[0].runs[ALTERNATIVE].estimates:
             return None
         design = self.scenario.design
@@ -209,7 +221,7 @@ class _Sizes:
 
     def points(self, key: tuple[str, str, str]) -> tuple[SizePoint, ...]:
         out = []
-        for n in sorted(self.draws):
+        for n in self.sizes_of(key):
             s = self.summary(n, key)
             if s is not None:
                 out.append(SizePoint(n, s.power, s.power_se, s.sd, s.mean_se, s.mean_estimate, s.truth, s.replicates))
@@ -371,7 +383,7 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
             st.below = n if st.below is None else max(st.below, n)
 
     # 1. Coarse grid: double up until each test is bracketed, ruled out, or at its largest size.
-    sizes.ensure(start, coarse)
+    sizes.ensure(start, coarse, keys)
     n = start
     while True:
         open_up = []
@@ -399,7 +411,7 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
             if up >= nxt:
                 continue
             if up > n:
-                sizes.ensure(up, coarse)
+                sizes.ensure(up, coarse, [st.key])
                 score(up, st)
             if st.above is None:
                 s = sizes.summary(max(up, n), st.key)
@@ -409,7 +421,7 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
         open_up = [st for st in open_up if not st.done and st.above is None]
         if not open_up or nxt == n:
             break
-        sizes.ensure(nxt, coarse)
+        sizes.ensure(nxt, coarse, [st.key for st in open_up])
         n = nxt
     # Halve down for tests already powered at the start.
     n = start
@@ -427,7 +439,7 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
                 st.status = "reached at the smallest size"
                 st.done = True
             break
-        sizes.ensure(nxt, coarse)
+        sizes.ensure(nxt, coarse, [st.key for st in low])
         for st in low:
             score(nxt, st)
         n = nxt
@@ -529,7 +541,7 @@ def _plateau_reason(scenario: Scenario, key: tuple[str, str, str], trend: Sequen
 
 
 def _trend_points(sizes: _Sizes, key: tuple[str, str, str]) -> list[tuple[int, _Summary]]:
-    return [(n, sm) for n in sorted(sizes.draws) if (sm := sizes.summary(n, key)) is not None]
+    return [(n, sm) for n in sizes.sizes_of(key) if (sm := sizes.summary(n, key)) is not None]
 
 
 def _solve_trend(scenario: Scenario, sizes: _Sizes, key: tuple[str, str, str], low: float, high: float) -> float | None:
@@ -610,7 +622,7 @@ def _refine(scenario: Scenario, sizes: _Sizes, st: _KeyState, precision: float, 
     settled = False
     for step_index in range(_MAX_REFINE_STEPS):
         last = step_index == _MAX_REFINE_STEPS - 1
-        sizes.ensure(n_v, max(G, sizes.graphs(n_v)))
+        sizes.ensure(n_v, max(G, sizes.graphs(n_v, key)), [key])
         slope = _probit_slope(scenario, sizes, key, n_v)
         log_hat, h, _ = _pooled(scenario, sizes, key, n_v, slope)
         moving = abs(log_hat - math.log(n_v)) > max(h, precision / 2)
@@ -622,12 +634,12 @@ def _refine(scenario: Scenario, sizes: _Sizes, st: _KeyState, precision: float, 
                 n_v = nxt
                 continue
         settled = not moving
-        if h > precision and sizes.graphs(n_v) < cap and not last:
+        if h > precision and sizes.graphs(n_v, key) < cap and not last:
             # Information grows with replicates: add what the precision needs, plus 10%.
-            now = sizes.graphs(n_v)
+            now = sizes.graphs(n_v, key)
             # No usable information yet (h infinite, e.g. power 0 or 1 everywhere near): double.
             needed = math.ceil(now * ((h / precision) ** 2 - 1) * 1.1) + 1 if math.isfinite(h) else now
-            sizes.ensure(n_v, min(cap, 4 * now, now + max(needed, 1)))
+            sizes.ensure(n_v, min(cap, 4 * now, now + max(needed, 1)), [key])
             continue
         break
     s = sizes.summary(n_v, key)
@@ -636,7 +648,7 @@ def _refine(scenario: Scenario, sizes: _Sizes, st: _KeyState, precision: float, 
     if not settled:
         flags.append(f"the refinement did not settle within {_MAX_REFINE_STEPS} steps: the estimate lies away from the last simulated size")
     if h > precision:
-        why = f"max_graphs = {cap}" if sizes.graphs(n_v) >= cap else f"the {_MAX_REFINE_STEPS} refinement steps allowed"
+        why = f"max_graphs = {cap}" if sizes.graphs(n_v, key) >= cap else f"the {_MAX_REFINE_STEPS} refinement steps allowed"
         flags.append(f"precision ±{h:.1%} short of the requested ±{precision:.1%} ({why})")
     if s.failed:
         flags.append(f"{s.failed} of {s.failed + s.replicates} replicates at {n_v:,} units had no estimate (an empty arm, or the estimator undefined on the graph); power counts the others")

@@ -144,3 +144,23 @@ def test_size_result_is_reproducible_and_independent_of_batch_size() -> None:
     assert runs.first == runs.small_batches
     # A different seed changes the numbers (the check above is not vacuous).
     assert runs.other_seed != runs.first
+
+
+def test_size_of_one_test_does_not_depend_on_the_other_planned_tests() -> None:
+    """The Hajek/Neyman n is identical whether two_hop_psd is planned before it, after it, or not at all."""
+    # Each test's search uses only the sizes and graph counts it asked for
+    # itself; the draws are content-keyed, so a shared simulation is the
+    # same numbers either way (STYLE.md: same scenario and seed, same result).
+    def answer(variances: list[str]) -> tuple:
+        scenario = block_model_scenario(
+            units=[200], mean_degree=4, graphs=20, seed=9,
+            outcome={"direct_effect": 0.25},
+            estimators={"direct": ["hajek"], "direct_variance": variances, "spillover": ["centred_ht"], "eigenvectors": 0},
+            simulation={"relative_precision": 0.1},
+        )
+        (record,) = designcalc.required_sample_size(scenario).select(estimand="direct", variance_estimator="neyman")
+        return record.required_units, record.units_low, record.units_high, record.verified_units, record.points
+
+    alone = answer(["neyman"])
+    assert answer(["neyman", "two_hop_psd"]) == alone
+    assert answer(["two_hop_psd", "neyman"]) == alone
