@@ -20,13 +20,13 @@ from typing import Callable, Sequence
 from designcalc.engine import ESTIMANDS, EngineProgress, planned_keys
 from designcalc.errors import DesignCalcError
 from designcalc.mde import MdeRecord, minimum_detectable_effects
-from designcalc.power import CAUTIONS
+from designcalc.inference import Z95
+from designcalc.power import CAUTIONS, FlaggedRecord
 from designcalc.scenario import Scenario
 
 __all__ = ["DEFAULT_GRID", "TestSpec", "Criterion", "CompareRow", "Choice", "CompareResult", "parse_test_spec", "compare_treatment_probabilities"]
 
 DEFAULT_GRID = (0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7, 0.8, 0.9)
-_Z95 = 1.959963984540054
 
 
 @dataclass(frozen=True)
@@ -78,7 +78,7 @@ class Criterion:
 
 
 @dataclass(frozen=True)
-class CompareRow:
+class CompareRow(FlaggedRecord):
     units: int
     treatment_probability: float
     estimand: str
@@ -97,11 +97,6 @@ class CompareRow:
     best: bool
     tied_with_best: bool
     flags: tuple[str, ...] = ()
-
-    def to_dict(self) -> dict[str, object]:
-        d = asdict(self)
-        d["flags"] = list(self.flags)
-        return d
 
 
 @dataclass(frozen=True)
@@ -204,7 +199,7 @@ def compare_treatment_probabilities(
         best = min(finite, key=lambda r: r.mde)
         best_ids.add(id(best))
         for r in finite:
-            combined_se = math.hypot(_half(r), _half(best)) / _Z95
+            combined_se = math.hypot(_half(r), _half(best)) / Z95
             if r is not best and abs(r.mde - best.mde) <= 2 * combined_se:
                 tied_ids.add(id(r))
     rows = tuple(

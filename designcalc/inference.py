@@ -16,7 +16,18 @@ from dataclasses import dataclass
 
 import scipy.stats
 
-__all__ = ["ReferenceDistribution", "reference_distribution", "critical_value", "mde_multiplier", "quantile"]
+__all__ = [
+    "Z95",
+    "ReferenceDistribution",
+    "reference_distribution",
+    "critical_value",
+    "mde_multiplier",
+    "quantile",
+    "probit",
+    "floored_power_se",
+]
+
+Z95 = 1.959963984540054  # the normal 0.975 quantile: 95% Monte Carlo intervals
 
 
 @dataclass(frozen=True)
@@ -66,3 +77,23 @@ def mde_multiplier(alpha: float, power: float, alternative: str, df: float | Non
     2.8016
     """
     return critical_value(alpha, alternative, df) + quantile(power, df)
+
+
+def probit(p: float) -> float:
+    """Phi^-1(p), with p kept inside [0.001, 0.999] so that simulated powers of 0 or 1 stay finite."""
+    return float(scipy.stats.norm.ppf(min(max(p, 0.001), 0.999)))
+
+
+def floored_power_se(power: float, clustered_se: float, replicates: int) -> float:
+    """A simulated power's MC se, never below the binomial se (with p(1 - p) at least 1/R).
+
+    A graph-clustered se from few graphs is noisy, and a run that stops
+    when it happens to be small under-covers; the binomial floor (exact for
+    independent replicates) guards the low side and is never 0.
+
+    >>> round(floored_power_se(1.0, 0.0, 100), 3)
+    0.01
+    """
+    R = max(replicates, 1)
+    floor = (max(power * (1 - power), 1 / R) / R) ** 0.5
+    return max(clustered_se, floor) if clustered_se == clustered_se else floor

@@ -31,7 +31,7 @@ from __future__ import annotations
 
 import math
 import time
-from dataclasses import asdict, dataclass, field, replace
+from dataclasses import dataclass, field, replace
 from typing import Callable, Sequence
 
 import numpy as np
@@ -52,20 +52,19 @@ from designcalc.engine import (
 )
 from designcalc.errors import ModelError
 from designcalc.estimands import exact_estimands
-from designcalc.inference import critical_value, mde_multiplier, reference_distribution
+from designcalc.inference import Z95, critical_value, floored_power_se, mde_multiplier, probit, reference_distribution
 from designcalc.outcomes import OutcomeModel
-from designcalc.power import CAUTIONS, clustered_mean_se, clustered_sd, provenance, reject, stack_run
+from designcalc.power import CAUTIONS, FlaggedRecord, ResultTable, clustered_mean_se, clustered_sd, provenance, reject, stack_run
 from designcalc.scenario import Scenario
 
 __all__ = ["MdeRecord", "MdeResult", "minimum_detectable_effects", "effect_direction_model", "AGREEMENT_Z"]
 
 AGREEMENT_Z = 3.0  # |power - target| within this many MC SEs counts as agreement (CHECKS.md §3)
 _MAX_SEARCH_STEPS = 6
-_Z95 = 1.959963984540054
 
 
 @dataclass(frozen=True)
-class MdeRecord:
+class MdeRecord(FlaggedRecord):
     """The minimum detectable effect of one planned test at one design point."""
 
     estimand: str
@@ -98,14 +97,9 @@ class MdeRecord:
     direction: int
     flags: tuple[str, ...] = ()
 
-    def to_dict(self) -> dict[str, object]:
-        d = asdict(self)
-        d["flags"] = list(self.flags)
-        return d
-
 
 @dataclass(frozen=True)
-class MdeResult:
+class MdeResult(ResultTable):
     """Every MDE record of a run, with provenance, warnings and whether it was cut short."""
 
     scenario_name: str
@@ -115,19 +109,6 @@ class MdeResult:
     partial: bool = False
     cautions: tuple[str, ...] = CAUTIONS
 
-    def to_dict(self) -> dict[str, object]:
-        return {
-            "scenario": self.scenario_name,
-            "partial": self.partial,
-            "provenance": self.provenance,
-            "warnings": list(self.warnings),
-            "cautions": list(self.cautions),
-            "results": [r.to_dict() for r in self.records],
-        }
-
-    def select(self, **criteria: object) -> list[MdeRecord]:
-        """Records whose fields equal the given values, e.g. ``select(estimand="spillover")``."""
-        return [r for r in self.records if all(getattr(r, k) == v for k, v in criteria.items())]
 
 
 def effect_direction_model(model: OutcomeModel, estimand: str) -> OutcomeModel:
@@ -186,10 +167,6 @@ class _Track:
         return "mde:" + "/".join(self.key)
 
 
-def _probit(p: float) -> float:
-    return float(scipy.stats.norm.ppf(min(max(p, 0.001), 0.999)))
-
-
 def _mean_effect(draws: Sequence[GraphDraws], model: OutcomeModel, estimand: str, pi: float) -> float:
     """Mean over graphs of the exact estimand of ``model`` (graphs kept with keep_units=True)."""
     values = [exact_estimands(d.degrees, d.theta, model, pi).value(estimand) for d in draws]
@@ -244,15 +221,8 @@ def _rates(draws: Sequence[GraphDraws], label: str, key: tuple[str, str, str], c
 
 
 def _stable_se(t: _Track) -> float:
-    """The power's MC se, never below the binomial se (with p(1 - p) >= 1/R).
-
-    A clustered se from few graphs is noisy, and stopping when it happens
-    to be small makes intervals under-cover; the binomial floor (exact for
-    independent replicates) guards the low side and is 0 only never.
-    """
-    R = max(t.replicates, 1)
-    floor = math.sqrt(max(t.power * (1 - t.power), 1 / R) / R)
-    return max(t.power_se, floor) if math.isfinite(t.power_se) else floor
+    """The track's power MC se, floored at the binomial se (``floored_power_se``)."""
+    return floored_power_se(t.power, t.power_se, t.replicates)
 
 
 def _power_model(t: _Track, alternative: str) -> Callable[[float], float] | None:
@@ -280,7 +250,7 @@ def _probit_slope(t: _Track, alternative: str) -> float:
     predicted = _power_model(t, alternative)
     if predicted is not None:
         h = 0.01 * t.effect
-        slope = (_probit(predicted(t.effect + h)) - _probit(predicted(t.effect - h))) / (2 * h)
+        slope = (probit(predicted(t.effect + h)) - probit(predicted(t.effect - h))) / (2 * h)
         if math.isfinite(slope) and slope > 0:
             return slope
     return 1.0 / t.sd if t.sd > 0 else float("nan")
@@ -300,7 +270,7 @@ def _model_step(t: _Track, target: float, alternative: str) -> float:
     m = t.effect
     predicted = _power_model(t, alternative)
     if predicted is None:
-        return m + (_probit(target) - _probit(t.power)) * t.sd
+        return m + (probit(target) - probit(t.power)) * t.sd
     low, high = 0.25 * m, 4.0 * m
     if predicted(high) < target:
         return 2.0 * m  # the model sees no crossing: take a bounded step and let the plateau check decide
@@ -558,7 +528,7 @@ def _design_point(
             n_graphs = len(draws_by_track[t.label])
         else:
             mde = t.formula
-            hw = _Z95 * t.multiplier * sd_se
+            hw = Z95 * t.multiplier * sd_se
             method = "formula (not verified)"
             n_graphs = G
         flags = list(t.flags)
@@ -648,11 +618,11 @@ def half_width(t: _Track, alternative: str) -> float:
     Uses the stabilised se (``_stable_se``) and a t quantile with graphs - 1
     degrees of freedom, since the MC se is clustered by graph.
     """
-    slope = float(scipy.stats.norm.pdf(_probit(t.power))) * _probit_slope(t, alternative)
+    slope = float(scipy.stats.norm.pdf(probit(t.power))) * _probit_slope(t, alternative)
     q = float(scipy.stats.t.ppf(0.975, t.graphs - 1)) if t.graphs >= 2 else float("inf")
     return q * _stable_se(t) / slope if slope > 0 else float("inf")
 
 
 def _estimate(t: _Track, target: float, alternative: str) -> float:
     """One probit-Newton step from the last simulated effect to the target power."""
-    return t.effect + (_probit(target) - _probit(t.power)) / _probit_slope(t, alternative)
+    return t.effect + (probit(target) - probit(t.power)) / _probit_slope(t, alternative)

@@ -30,7 +30,7 @@ from designcalc.engine import (
     dropped_keys,
     simulate_graph,
 )
-from designcalc.inference import critical_value, reference_distribution
+from designcalc.inference import Z95, critical_value, floored_power_se, reference_distribution
 from designcalc.scenario import Scenario
 
 __all__ = [
@@ -43,6 +43,8 @@ __all__ = [
     "critical_value",
     "reject",
     "stack_run",
+    "ResultTable",
+    "FlaggedRecord",
 ]
 
 CAUTIONS = (
@@ -110,8 +112,39 @@ def stack_run(draws: Sequence[GraphDraws], label: str, key: tuple[str, str, str]
     return est, se, truth
 
 
+class ResultTable:
+    """What every result of the tool shares: its JSON form and record selection.
+
+    Subclasses are frozen dataclasses with ``scenario_name``, ``records``,
+    ``provenance``, ``warnings``, ``partial`` and ``cautions``.
+    """
+
+    def to_dict(self) -> dict[str, object]:
+        return {
+            "scenario": self.scenario_name,  # type: ignore[attr-defined]
+            "partial": self.partial,  # type: ignore[attr-defined]
+            "provenance": self.provenance,  # type: ignore[attr-defined]
+            "warnings": list(self.warnings),  # type: ignore[attr-defined]
+            "cautions": list(self.cautions),  # type: ignore[attr-defined]
+            "results": [r.to_dict() for r in self.records],  # type: ignore[attr-defined]
+        }
+
+    def select(self, **criteria: object) -> list:
+        """Records whose fields equal the given values, e.g. ``select(estimand="direct")``."""
+        return [r for r in self.records if all(getattr(r, k) == v for k, v in criteria.items())]  # type: ignore[attr-defined]
+
+
+class FlaggedRecord:
+    """A frozen-dataclass record whose JSON form turns its ``flags`` tuple into a list."""
+
+    def to_dict(self) -> dict[str, object]:
+        d = asdict(self)  # type: ignore[call-overload]
+        d["flags"] = list(self.flags)  # type: ignore[attr-defined]
+        return d
+
+
 @dataclass(frozen=True)
-class PowerRecord:
+class PowerRecord(FlaggedRecord):
     """One design point x estimand x estimator, every Monte Carlo number with its error."""
 
     estimand: str
@@ -143,14 +176,9 @@ class PowerRecord:
     flags: tuple[str, ...] = ()
     reference_distribution: str = "normal"
 
-    def to_dict(self) -> dict[str, object]:
-        d = asdict(self)
-        d["flags"] = list(self.flags)
-        return d
-
 
 @dataclass(frozen=True)
-class PowerResult:
+class PowerResult(ResultTable):
     """All records of a power run, its provenance, warnings and whether it was cut short."""
 
     scenario_name: str
@@ -159,20 +187,6 @@ class PowerResult:
     warnings: tuple[str, ...] = ()
     partial: bool = False
     cautions: tuple[str, ...] = CAUTIONS
-
-    def to_dict(self) -> dict[str, object]:
-        return {
-            "scenario": self.scenario_name,
-            "partial": self.partial,
-            "provenance": self.provenance,
-            "warnings": list(self.warnings),
-            "cautions": list(self.cautions),
-            "results": [r.to_dict() for r in self.records],
-        }
-
-    def select(self, **criteria: object) -> list[PowerRecord]:
-        """Records whose fields equal the given values, e.g. ``select(estimand="direct")``."""
-        return [r for r in self.records if all(getattr(r, k) == v for k, v in criteria.items())]
 
 
 def summarise_design_point(scenario: Scenario, point: DesignPoint, draws: Sequence[GraphDraws]) -> list[PowerRecord]:
@@ -392,11 +406,9 @@ def _settled(records: Sequence[PowerRecord], target: float, precision: float) ->
     for r in records:
         if not np.isfinite(r.power_mc_se):
             continue
-        # A clustered se of 0 (every replicate agreeing, few graphs) is no
-        # evidence; never trust less than the binomial se at p(1 - p) >= 1/R.
-        floor = np.sqrt(max(r.power * (1 - r.power), 1 / max(r.replicates, 1)) / max(r.replicates, 1))
-        se = max(r.power_mc_se, floor)
-        if abs(r.power - target) < SETTLED_Z * se and 1.959963984540054 * se > precision:
+        # A clustered se of 0 (every replicate agreeing, few graphs) is no evidence.
+        se = floored_power_se(r.power, r.power_mc_se, r.replicates)
+        if abs(r.power - target) < SETTLED_Z * se and Z95 * se > precision:
             return False
     return True
 

@@ -49,14 +49,13 @@ from designcalc.engine import (
     planned_keys,
     simulate_graph,
 )
-from designcalc.inference import critical_value, reference_distribution
-from designcalc.power import CAUTIONS, clustered_mean_se, clustered_sd, provenance, reject, stack_run
+from designcalc.inference import Z95, critical_value, floored_power_se, probit, reference_distribution
+from designcalc.power import CAUTIONS, FlaggedRecord, ResultTable, clustered_mean_se, clustered_sd, provenance, reject, stack_run
 from designcalc.scenario import Scenario
 
 __all__ = ["SizePoint", "SizeRecord", "SizeResult", "required_sample_size", "MAX_ADJACENCY_ENTRIES"]
 
 MAX_ADJACENCY_ENTRIES = 40_000_000  # ~ 0.5 GB of sparse adjacency; larger sizes are not simulated
-_Z95 = 1.959963984540054
 _MAX_REFINE_STEPS = 12
 
 
@@ -75,7 +74,7 @@ class SizePoint:
 
 
 @dataclass(frozen=True)
-class SizeRecord:
+class SizeRecord(FlaggedRecord):
     """The required number of units for one planned test at one treatment probability."""
 
     estimand: str
@@ -99,14 +98,13 @@ class SizeRecord:
     size_mc_se: float = float("nan")
 
     def to_dict(self) -> dict[str, object]:
-        d = asdict(self)
-        d["flags"] = list(self.flags)
+        d = super().to_dict()
         d["points"] = [asdict(p) for p in self.points]
         return d
 
 
 @dataclass(frozen=True)
-class SizeResult:
+class SizeResult(ResultTable):
     scenario_name: str
     records: tuple[SizeRecord, ...]
     provenance: dict[str, object]
@@ -114,18 +112,6 @@ class SizeResult:
     partial: bool = False
     cautions: tuple[str, ...] = CAUTIONS
 
-    def to_dict(self) -> dict[str, object]:
-        return {
-            "scenario": self.scenario_name,
-            "partial": self.partial,
-            "provenance": self.provenance,
-            "warnings": list(self.warnings),
-            "cautions": list(self.cautions),
-            "results": [r.to_dict() for r in self.records],
-        }
-
-    def select(self, **criteria: object) -> list[SizeRecord]:
-        return [r for r in self.records if all(getattr(r, k) == v for k, v in criteria.items())]
 
 
 def _round_units(x: float) -> int:
@@ -135,10 +121,6 @@ def _round_units(x: float) -> int:
         return n
     digits = int(math.floor(math.log10(n))) - 2
     return int(round(n, -digits))
-
-
-def _probit(p: float) -> float:
-    return float(scipy.stats.norm.ppf(min(max(p, 0.001), 0.999)))
 
 
 @dataclass
@@ -574,7 +556,7 @@ def _probit_slope(scenario: Scenario, sizes: _Sizes, key: tuple[str, str, str], 
     design = scenario.design
     b = _sd_slope(_trend_points(sizes, key))
     b = -0.5 if not math.isfinite(b) else min(max(b, -1.0), -0.05)
-    return -b * (critical_value(design.significance_level, design.alternative) + _probit(design.target_power))
+    return -b * (critical_value(design.significance_level, design.alternative) + probit(design.target_power))
 
 
 _POOL_WINDOW = 0.15  # |log(n_i / n)| within which simulated sizes are pooled into one estimate
@@ -594,15 +576,15 @@ def _pooled(scenario: Scenario, sizes: _Sizes, key: tuple[str, str, str], centre
         if abs(math.log(n) - math.log(centre)) > _POOL_WINDOW or sm.replicates == 0:
             continue
         # Never trust a clustered se below the binomial one (few graphs make it noisy).
-        se = max(sm.power_se if math.isfinite(sm.power_se) else 0.0, math.sqrt(max(sm.power * (1 - sm.power), 1 / sm.replicates) / sm.replicates))
-        z = _probit(sm.power)
+        se = floored_power_se(sm.power, sm.power_se, sm.replicates)
+        z = probit(sm.power)
         dens = float(scipy.stats.norm.pdf(z)) * slope
         weight = (dens / se) ** 2
-        num += weight * (math.log(n) + (_probit(target) - z) / slope)
+        num += weight * (math.log(n) + (probit(target) - z) / slope)
         den += weight
     if den == 0:
         return math.log(centre), float("inf"), 0.0
-    return num / den, _Z95 / math.sqrt(den), den
+    return num / den, Z95 / math.sqrt(den), den
 
 
 def _refine(scenario: Scenario, sizes: _Sizes, st: _KeyState, precision: float, cap: int, limit: int) -> SizeRecord:
@@ -614,8 +596,8 @@ def _refine(scenario: Scenario, sizes: _Sizes, st: _KeyState, precision: float, 
     if guess is None:
         # The trend does not cross the target between the two sizes: interpolate their powers on the probit scale.
         a, b = sizes.summary(low, key), sizes.summary(high, key)
-        za, zb = _probit(a.power), _probit(b.power) if b is not None else _probit(a.power) + 1.0
-        w = (_probit(scenario.design.target_power) - za) / (zb - za) if zb != za else 0.5
+        za, zb = probit(a.power), probit(b.power) if b is not None else probit(a.power) + 1.0
+        w = (probit(scenario.design.target_power) - za) / (zb - za) if zb != za else 0.5
         guess = math.exp(math.log(low) + min(max(w, 0.0), 1.0) * (math.log(high) - math.log(low)))
     n_v = min(max(_round_units(guess), low + 1), limit)
     log_hat, h = math.log(n_v), float("inf")
