@@ -143,10 +143,13 @@ def exact_estimands(
             th = theta[idx][:, None]
             f1 = f(th, 1.0, x[None, :])
             f0 = f(th, 0.0, x[None, :])
-            mean1[idx] = f1 @ pmf
-            mean0[idx] = f0 @ pmf
-            delta1 = np.diff(f1, axis=1) @ pmf_minus
-            delta0 = np.diff(f0, axis=1) @ pmf_minus
+            # Row sums, not BLAS matrix-vector products: a BLAS result may
+            # depend on how many rows it is handed, and the estimands must
+            # not depend on the chunk size.
+            mean1[idx] = (f1 * pmf).sum(axis=1)
+            mean0[idx] = (f0 * pmf).sum(axis=1)
+            delta1 = (np.diff(f1, axis=1) * pmf_minus).sum(axis=1)
+            delta0 = (np.diff(f0, axis=1) * pmf_minus).sum(axis=1)
             spill[idx] = d * (pi * delta1 + (1 - pi) * delta0)
     isolated = degrees == 0
     x_full = np.where(isolated, 0.0, 1.0)
