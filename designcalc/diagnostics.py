@@ -47,6 +47,19 @@ class ScenarioCheck:
     def warnings(self) -> tuple[str, ...]:
         return tuple(w for s in self.sizes for w in s.warnings)
 
+    @property
+    def covariate_note(self) -> str:
+        """What the baseline covariates state and the classical gain they imply ("" without covariates)."""
+        loadings = self.scenario.covariates
+        if loadings is None:
+            return ""
+        factor = (1.0 - loadings.joint_r_squared) ** 0.5
+        return (
+            f"{loadings.describe()}. Without interference, adjusting for them shrinks the direct-effect MDE "
+            f"by sqrt(1 - R²) = {factor:.3f} (Bloom 1995); the simulation shows what they buy here, "
+            "for the spillover estimators too"
+        )
+
 
 def expected_share_isolated(model: EdgeModel, rho: float, n_units: int) -> float:
     """P(a unit has no neighbour) = E_u[(1 - integral of min(1, rho g(u, v)) dv)^(n-1)].

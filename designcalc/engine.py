@@ -14,7 +14,9 @@ Random streams (layout version ``STREAM_LAYOUT_VERSION``) form a
   same networks serve every treatment probability (common random numbers
   make treatment probabilities comparable);
 * assignment and noise: key (1, units, round(pi * 1e9), graph index) ->
-  children [assignment, noise].
+  children [assignment, noise, covariates]; the third child (the baseline
+  covariates' own noise) is drawn only when the scenario states covariates,
+  and spawning it leaves the first two streams unchanged.
 
 So a result never depends on how work is split, on ``batch_size``, or on
 which estimators are planned.
@@ -22,11 +24,12 @@ which estimators are planned.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Callable, Sequence
 
 import numpy as np
 
+from designcalc.covariates import draw_covariates, latent_individual_scores
 from designcalc.estimands import Estimands, ExposureMoments, estimands_from_moments, exact_estimands, exposure_moments
 from designcalc.errors import ModelError
 from designcalc.estimators import (
@@ -35,11 +38,13 @@ from designcalc.estimators import (
     combine_total,
     estimate_direct_hajek,
     estimate_direct_ht,
+    estimate_direct_lin,
     estimate_spillover_exposure_regression,
     estimate_spillover_ht,
     estimate_spillover_pc,
     estimate_spillover_pc_corrected,
     prepare_graph,
+    residualise_on_covariates,
 )
 from designcalc.networks import kernel_grid_cells, sample_network
 from designcalc.outcomes import OutcomeModel
@@ -75,6 +80,8 @@ _VARIANCE_OF_SPILLOVER = {
     "pc_balancing_corrected": "plug_in",
     "exposure_regression": "hc1",
 }
+_VARIANCE_OF_SPILLOVER.update({f"{name}_adjusted": v for name, v in list(_VARIANCE_OF_SPILLOVER.items())})
+_LIN_VARIANCE = "hc2"
 
 
 @dataclass(frozen=True)
@@ -176,17 +183,32 @@ def _available_variances(scenario: Scenario, units: int) -> list[str]:
     return [v for v in scenario.estimators.direct_variance if v != "two_hop" or units <= TWO_HOP_MAX_UNITS]
 
 
+def _direct_variances(scenario: Scenario, name: str, units: int) -> list[str]:
+    """Variance estimators of one direct estimator: Lin's regression has its own (HC2)."""
+    return [_LIN_VARIANCE] if name == "lin" else _available_variances(scenario, units)
+
+
+def _total_direct(scenario: Scenario, spillover: str) -> str:
+    """The direct estimator a total pairs with ``spillover``: Lin with adjusted spillovers, else an unadjusted one."""
+    direct = scenario.estimators.direct
+    if spillover.endswith("_adjusted") and "lin" in direct:
+        return "lin"
+    unadjusted = [d for d in direct if d != "lin"]
+    return unadjusted[0] if unadjusted else direct[0]
+
+
 def planned_keys(scenario: Scenario, units: int) -> list[tuple[str, str, str]]:
     """(estimand, estimator, variance estimator) of every planned test available at ``units``.
 
     The eigen-clipped two-hop variance needs a dense n x n eigendecomposition,
     so it is left out above ``TWO_HOP_MAX_UNITS`` (``two_hop_psd`` is not).
+    A total pairs each spillover estimator with the first planned direct
+    estimator of its kind (Lin's with covariate-adjusted spillovers).
     """
     plan = scenario.estimators
-    variances = _available_variances(scenario, units)
-    keys = [("direct", d, v) for d in plan.direct for v in variances]
+    keys = [("direct", d, v) for d in plan.direct for v in _direct_variances(scenario, d, units)]
     keys += [("spillover", s, _VARIANCE_OF_SPILLOVER[s]) for s in plan.spillover]
-    keys += [("total", f"{plan.direct[0]}+{s}", "linearised") for s in plan.spillover]
+    keys += [("total", f"{_total_direct(scenario, s)}+{s}", "linearised") for s in plan.spillover]
     return keys
 
 
@@ -195,7 +217,7 @@ def dropped_keys(scenario: Scenario, units: int) -> list[tuple[str, str, str]]:
     plan = scenario.estimators
     if "two_hop" not in plan.direct_variance or units <= TWO_HOP_MAX_UNITS:
         return []
-    return [("direct", d, "two_hop") for d in plan.direct]
+    return [("direct", d, "two_hop") for d in plan.direct if d != "lin"]
 
 
 def design_points(scenario: Scenario) -> list[DesignPoint]:
@@ -212,11 +234,13 @@ def _graph_streams(entropy: int, units: int, graph_index: int) -> tuple[np.rando
     return np.random.default_rng(types), np.random.default_rng(graph)
 
 
-def _assignment_streams(entropy: int, point: DesignPoint, graph_index: int) -> tuple[np.random.Generator, np.random.Generator]:
+def _assignment_streams(
+    entropy: int, point: DesignPoint, graph_index: int
+) -> tuple[np.random.Generator, np.random.Generator, np.random.Generator]:
     key = (point.units, int(round(point.treatment_probability * _PROBABILITY_KEY_SCALE)), graph_index)
     # The leading 0 / 1 keeps graph and assignment keys apart.
-    assignment, noise = np.random.SeedSequence(entropy, spawn_key=(1,) + key).spawn(2)
-    return np.random.default_rng(assignment), np.random.default_rng(noise)
+    assignment, noise, covariates = np.random.SeedSequence(entropy, spawn_key=(1,) + key).spawn(3)
+    return np.random.default_rng(assignment), np.random.default_rng(noise), np.random.default_rng(covariates)
 
 
 def _outcomes(model: OutcomeModel, theta: np.ndarray, W: np.ndarray, X: np.ndarray, noise: np.ndarray) -> np.ndarray:
@@ -234,10 +258,15 @@ def _run_estimators(
     pi: float,
     keys: Sequence[tuple[str, str, str]],
     failures: dict[str, str] | None = None,
+    covariates: np.ndarray | None = None,
 ) -> dict[tuple[str, str, str], EstimateBatch]:
     """The estimates of ``keys`` on one assignment batch; each estimator runs at most once.
 
-    A spillover estimator undefined on the graph gives NaN and its reason in ``failures``.
+    A spillover estimator undefined on the graph gives NaN and its reason in
+    ``failures``.  ``covariates`` (n, B, K) feed Lin's estimator and the
+    ``*_adjusted`` spillover estimators, which run their unadjusted form on
+    covariate-residualised outcomes (the exposure regression adds them as
+    regressors instead).
     """
     failures = {} if failures is None else failures
     plan = scenario.estimators
@@ -247,6 +276,8 @@ def _run_estimators(
         if (name, variance) not in cache:
             if name == "hajek":
                 cache[name, variance] = estimate_direct_hajek(prep, W, Y, treatment_probability=pi, variance=variance)
+            elif name == "lin":
+                cache[name, variance] = estimate_direct_lin(prep, W, Y, treatment_probability=pi, covariates=covariates)
             else:
                 cache[name, variance] = estimate_direct_ht(prep, W, Y, treatment_probability=pi, centre=plan.centre, variance=variance)
         return cache[name, variance]
@@ -264,14 +295,25 @@ def _run_estimators(
                 cache[name, ""] = EstimateBatch(name, _VARIANCE_OF_SPILLOVER[name], nan, nan.copy(), np.full(W.shape, np.nan))
         return cache[name, ""]
 
+    residualised: list[np.ndarray] = []
+
     def _spillover_batch(name: str) -> EstimateBatch:
+        if name == "exposure_regression_adjusted":
+            return estimate_spillover_exposure_regression(prep, W, Y, treatment_probability=pi, covariates=covariates)
+        if name.endswith("_adjusted"):
+            if not residualised:
+                residualised.append(residualise_on_covariates(prep, Y, covariates))
+            return replace(_unadjusted(name.removesuffix("_adjusted"), residualised[0]), estimator=name)
+        return _unadjusted(name, Y)
+
+    def _unadjusted(name: str, outcomes: np.ndarray) -> EstimateBatch:
         if name == "centred_ht":
-            return estimate_spillover_ht(prep, W, Y, treatment_probability=pi, centre=plan.centre)
+            return estimate_spillover_ht(prep, W, outcomes, treatment_probability=pi, centre=plan.centre)
         if name == "pc_balancing":
-            return estimate_spillover_pc(prep, W, Y, treatment_probability=pi)
+            return estimate_spillover_pc(prep, W, outcomes, treatment_probability=pi)
         if name == "pc_balancing_corrected":
-            return estimate_spillover_pc_corrected(prep, W, Y, treatment_probability=pi)
-        return estimate_spillover_exposure_regression(prep, W, Y, treatment_probability=pi)
+            return estimate_spillover_pc_corrected(prep, W, outcomes, treatment_probability=pi)
+        return estimate_spillover_exposure_regression(prep, W, outcomes, treatment_probability=pi)
 
     out: dict[tuple[str, str, str], EstimateBatch] = {}
     for key in keys:
@@ -281,10 +323,10 @@ def _run_estimators(
         elif estimand == "spillover":
             out[key] = spillover(name)
         else:
-            # The total pairs the first planned direct estimator (with its first
-            # variance estimator available at this size) with a spillover estimator.
+            # The total pairs a planned direct estimator (with its first variance
+            # estimator available at this size) with a spillover estimator.
             first, second = name.split("+", 1)
-            out[key] = combine_total(direct(first, _available_variances(scenario, W.shape[0])[0]), spillover(second))
+            out[key] = combine_total(direct(first, _direct_variances(scenario, first, W.shape[0])[0]), spillover(second))
     return out
 
 
@@ -297,6 +339,7 @@ class _PreparedGraph:
     prep: GraphPreparation
     W_all: np.ndarray
     noise_all: np.ndarray
+    covariates_all: np.ndarray | None = None  # (n, B, K) baseline covariates, when the scenario states any
     moments: ExposureMoments | None = None
 
 
@@ -325,14 +368,20 @@ def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int) -> _Prepa
         mean_degree_hint=float(degrees.mean()) if n else 0.0,
         two_hop="two_hop" in scenario.estimators.direct_variance and n <= TWO_HOP_MAX_UNITS,
     )
-    assign_rng, noise_rng = _assignment_streams(entropy, point, graph_index)
+    assign_rng, noise_rng, covariate_rng = _assignment_streams(entropy, point, graph_index)
     B = scenario.simulation.assignments_per_graph
     W_all = (assign_rng.random((n, B)) < pi).astype(float)
     if scenario.outcome.kind == "continuous":
         noise_all = noise_rng.standard_normal((n, B))
     else:
         noise_all = noise_rng.random((n, B))  # uniforms, thresholded at the mean
-    return _PreparedGraph(net, theta, prep, W_all, noise_all)
+    covariates_all = None
+    if scenario.covariates is not None:
+        # Baseline covariates share the type and the individual noise with the
+        # outcome; they are the same for every run (common random numbers).
+        zeta = latent_individual_scores(scenario.outcome.kind, noise_all)
+        covariates_all = draw_covariates(scenario.covariates, theta, zeta, covariate_rng)
+    return _PreparedGraph(net, theta, prep, W_all, noise_all, covariates_all)
 
 
 def control_variance(model: OutcomeModel, theta: np.ndarray) -> float:
@@ -355,8 +404,9 @@ def _footprint(prepared: _PreparedGraph) -> int:
     """Bytes a cached graph holds: assignments, noise, adjacency and every array of the estimator preparation."""
     prep = prepared.prep
     arrays = [getattr(prep, f) for f in getattr(prep, "__dataclass_fields__", {})]
+    covariates = prepared.covariates_all.nbytes if prepared.covariates_all is not None else 0
     return (
-        prepared.W_all.nbytes + prepared.noise_all.nbytes + _nbytes(prepared.net.adjacency)
+        covariates + prepared.W_all.nbytes + prepared.noise_all.nbytes + _nbytes(prepared.net.adjacency)
         + sum(_nbytes(a) for a in arrays) + prepared.theta.nbytes
     )
 
@@ -431,12 +481,13 @@ def simulate_graph(
     for start in range(0, B, batch_size):
         W = g.W_all[:, start : start + batch_size]
         noise = g.noise_all[:, start : start + batch_size]
+        C = g.covariates_all[:, start : start + batch_size] if g.covariates_all is not None else None
         X = (A @ W) / safe_degrees
         for run in runs:
             if not run_keys[run.label]:
                 continue  # a run kept for its exact estimands only
             Y = _outcomes(run.model, g.theta, W, X, noise)
-            batches = _run_estimators(scenario, g.prep, W, Y, pi, run_keys[run.label], draws.failures)
+            batches = _run_estimators(scenario, g.prep, W, Y, pi, run_keys[run.label], draws.failures, C)
             chunks[run.label].append(({k: v.estimate for k, v in batches.items()}, {k: v.standard_error for k, v in batches.items()}))
     for run in runs:
         if not run_keys[run.label]:

@@ -21,6 +21,7 @@ corrected variant) in §3, variance estimators in §4.1 and §4.3.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from collections.abc import Sequence
 from typing import Literal
 
 import numpy as np
@@ -41,11 +42,13 @@ __all__ = [
     "combine_total",
     "estimate_direct_hajek",
     "estimate_direct_ht",
+    "estimate_direct_lin",
     "estimate_spillover_exposure_regression",
     "estimate_spillover_ht",
     "estimate_spillover_pc",
     "estimate_spillover_pc_corrected",
     "prepare_graph",
+    "residualise_on_covariates",
     "treated_neighbour_fraction",
 ]
 
@@ -1115,12 +1118,171 @@ def estimate_spillover_pc_corrected(
     )
 
 
+def _batched_ols(
+    regressors: Sequence[np.ndarray], outcomes: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """OLS of each column of ``outcomes`` on the matching columns of ``regressors``.
+
+    Returns ``(coefficients (B, p), inverse Gram (B, p, p), residuals (n, B),
+    singular (B,))``.  Gram matrices are built with per-column sums (so the
+    numbers do not depend on the batch size) and inverted as a stack; a
+    Gram matrix with condition number above ``_MAX_CONDITION`` is singular
+    (e.g. nobody treated, a constant regressor) and its column is flagged.
+    """
+    p = len(regressors)
+    batch = outcomes.shape[1]
+    gram = np.empty((batch, p, p))
+    moments = np.empty((batch, p))
+    for row in range(p):
+        moments[:, row] = _column_sums(regressors[row] * outcomes)
+        for col in range(row, p):
+            gram[:, row, col] = gram[:, col, row] = _column_sums(
+                regressors[row] * regressors[col]
+            )
+    singular = ~(np.linalg.cond(gram) < _MAX_CONDITION)
+    gram[singular] = np.eye(p)
+    inverse = np.linalg.inv(gram)
+    coefficients = (inverse * moments[:, None, :]).sum(axis=2)
+    residuals = outcomes - sum(
+        regressors[k] * coefficients[:, k][None, :] for k in range(p)
+    )
+    return coefficients, inverse, residuals, singular
+
+
+def _covariate_columns(prep: GraphPreparation, covariates: np.ndarray, batch: int) -> list[np.ndarray]:
+    """The ``K`` covariates as ``(n, B)`` arrays, checked against the batch."""
+    values = np.asarray(covariates, dtype=float)
+    if values.ndim == 2:
+        values = values[:, :, None]
+    if values.ndim != 3 or values.shape[:2] != (prep.n_units, batch):
+        raise ModelError(
+            f"`covariates` must have shape (n, B, K) with n = {prep.n_units} and "
+            f"B = {batch}; got shape {np.shape(covariates)}."
+        )
+    if not np.all(np.isfinite(values)):
+        raise ModelError("`covariates` must be finite.")
+    return [np.ascontiguousarray(values[:, :, k]) for k in range(values.shape[2])]
+
+
+def _centred(prep: GraphPreparation, columns: Sequence[np.ndarray]) -> list[np.ndarray]:
+    """Each covariate minus its per-column sample mean."""
+    return [c - _column_sums(c)[None, :] / prep.n_units for c in columns]
+
+
+def residualise_on_covariates(
+    prep: GraphPreparation, Y: np.ndarray, covariates: np.ndarray
+) -> np.ndarray:
+    """Outcomes with their covariate-predicted part removed, by a fit that does not use treatment.
+
+    Parameters
+    ----------
+    prep : GraphPreparation
+    Y : numpy.ndarray
+        Outcomes, shape ``(n, B)``.
+    covariates : numpy.ndarray
+        Baseline covariates, shape ``(n, B, K)`` (or ``(n, B)`` for one).
+
+    Returns
+    -------
+    numpy.ndarray
+        ``Y - (C - Cbar) beta`` per column, ``beta`` the OLS slopes of ``Y``
+        on the centred covariates ``C - Cbar`` (no treatment in the fit).
+
+    Notes
+    -----
+    Only the slopes are removed: the outcome level stays, so the centred HT
+    estimator keeps its pre-specified centre and PC-balancing its constant
+    basis vector.  Subtracting a fitted intercept as well would move every
+    residual by ``tau_DIR W_i / n`` and leak about ``tau_DIR dbar / n`` of
+    the direct effect into the spillover estimate; the slopes' remaining
+    dependence on treatment is of order ``dbar / n`` times the correlation
+    of neighbours' covariates.  Singular fits (a covariate constant in the
+    sample) leave the column unchanged.
+    """
+    outcomes = np.ascontiguousarray(np.asarray(Y, dtype=float))
+    if outcomes.ndim == 1:
+        outcomes = outcomes[:, None]
+    centred = _centred(prep, _covariate_columns(prep, covariates, outcomes.shape[1]))
+    _, _, residuals, singular = _batched_ols(centred, outcomes)
+    # The fit has no intercept column, so residuals keep the outcome mean
+    # (the covariates are centred, hence orthogonal to the constant).
+    residuals[:, singular] = outcomes[:, singular]
+    return residuals
+
+
+def estimate_direct_lin(
+    prep: GraphPreparation,
+    W: np.ndarray,
+    Y: np.ndarray,
+    *,
+    treatment_probability: float,
+    covariates: np.ndarray,
+) -> EstimateBatch:
+    """Lin's regression-adjusted estimator of the direct effect, HC2 standard error.
+
+    Parameters
+    ----------
+    prep : GraphPreparation
+    W, Y : numpy.ndarray
+        Treatments (0/1) and outcomes, shape ``(n, B)``.
+    treatment_probability : float
+        Bernoulli probability ``pi`` (only validated).
+    covariates : numpy.ndarray
+        Baseline covariates, shape ``(n, B, K)``.
+
+    Returns
+    -------
+    EstimateBatch
+        ``estimator="lin"``, ``variance_estimator="hc2"``: the coefficient of
+        ``W`` in the OLS fit of ``Y`` on ``(1, W, C - Cbar, W (C - Cbar))``
+        (covariates centred at their sample means, fully interacted with
+        treatment), with the HC2 robust variance
+        ``sum_i l_i^2 e_i^2 / (1 - h_ii)``, ``l_i`` the row of
+        ``(D^T D)^{-1} D^T`` for ``W`` and ``h_ii`` the leverages.
+        Contributions are ``n l_i e_i``.  Columns whose design is singular
+        (fewer than ``K + 1`` units in an arm, a constant covariate) get NaN.
+
+    Notes
+    -----
+    Lin (2013), "Agnostic notes on regression adjustments to experimental
+    data: reexamining Freedman's critique", Annals of Applied Statistics
+    7(1):295-318: with the interactions, adjustment cannot hurt asymptotic
+    precision under complete randomisation, and the Huber-White sandwich is
+    consistent or conservative.  HC2 (MacKinnon & White 1985) is chosen
+    because without covariates it equals the Neyman variance
+    ``s1^2/n1 + s0^2/n0`` exactly, so the adjusted and unadjusted tests are
+    on the same footing.  With ``K = 0`` columns the estimate is the Hajek
+    difference in means.  Running time ``O(n B K^2)``.
+    """
+    treatments, outcomes, _ = _validate_batch(prep, W, Y, treatment_probability)
+    centred = _centred(prep, _covariate_columns(prep, covariates, treatments.shape[1]))
+    regressors = [np.ones_like(treatments), treatments]
+    regressors += centred + [treatments * c for c in centred]
+    coefficients, inverse, residuals, singular = _batched_ols(regressors, outcomes)
+    p = len(regressors)
+    leverage_w = sum(regressors[k] * inverse[:, 1, k][None, :] for k in range(p))
+    hat = np.zeros_like(outcomes)
+    for k in range(p):
+        spread = sum(regressors[m] * inverse[:, k, m][None, :] for m in range(p))
+        hat += regressors[k] * spread
+    with np.errstate(divide="ignore", invalid="ignore"):
+        var = _column_sums(leverage_w**2 * residuals**2 / (1.0 - hat))
+    # A unit alone in its cell has leverage 1: HC2 is undefined.
+    singular |= ~np.all(hat < 1.0 - 1e-12, axis=0)
+    contributions = prep.n_units * leverage_w * residuals
+    contributions[:, singular] = np.nan
+    estimate = np.where(singular, np.nan, coefficients[:, 1])
+    standard_error = np.where(singular, np.nan, _safe_sqrt(var))
+    return EstimateBatch("lin", "hc2", estimate, standard_error, contributions)
+
+
 def estimate_spillover_exposure_regression(
     prep: GraphPreparation,
     W: np.ndarray,
     Y: np.ndarray,
     *,
     treatment_probability: float,
+    covariates: np.ndarray | None = None,
 ) -> EstimateBatch:
     """Spillover effect as the exposure coefficient of an OLS fit, HC1 SE.
 
@@ -1131,15 +1293,18 @@ def estimate_spillover_exposure_regression(
         Treatments (0/1) and outcomes, shape ``(n, B)``.
     treatment_probability : float
         Bernoulli probability ``pi`` (only validated; OLS does not use it).
+    covariates : numpy.ndarray, optional
+        Baseline covariates, shape ``(n, B, K)``, added to the regression
+        (the estimator is then named ``"exposure_regression_adjusted"``).
 
     Returns
     -------
     EstimateBatch
         ``estimator="exposure_regression"``, ``variance_estimator="hc1"``:
         the coefficient of ``X`` in the OLS regression of ``Y`` on
-        ``(1, W, X)``, ``X`` the treated-neighbour fraction (0 for
-        isolates), with the HC1 robust SE
-        ``n/(n-3) [(D^T D)^{-1} D^T diag(e^2) D (D^T D)^{-1}]_XX``.
+        ``(1, W, X)`` (plus the covariates), ``X`` the treated-neighbour
+        fraction (0 for isolates), with the HC1 robust SE
+        ``n/(n-p) [(D^T D)^{-1} D^T diag(e^2) D (D^T D)^{-1}]_XX``.
         Columns whose design is singular (e.g. nobody treated, constant
         exposure) get NaN. Contributions are ``n [(D^T D)^{-1} d_i]_X e_i``
         (mean zero by the normal equations).
@@ -1150,39 +1315,27 @@ def estimate_spillover_exposure_regression(
     ``tau_IND`` when the spillover is nonlinear in ``X`` or interacts with
     own treatment, and the HC1 SE ignores the dependence between neighbours'
     residuals. HC1 is MacKinnon & White (1985, J. Econometrics; from memory).
-    The 3x3 Gram matrices are built with column sums and inverted as a stack,
-    no loop over columns. Running time ``O((|E| + n) B)``.
+    The Gram matrices are built with column sums and inverted as a stack,
+    no loop over columns. Running time ``O((|E| + n p^2) B)``.
     """
     treatments, outcomes, _ = _validate_batch(prep, W, Y, treatment_probability)
     n_units = prep.n_units
     exposure = treated_neighbour_fraction(prep, treatments)
-    regressors = (np.ones_like(treatments), treatments, exposure)
-    batch = treatments.shape[1]
-    gram = np.empty((batch, 3, 3))
-    moments = np.empty((batch, 3))
-    for row in range(3):
-        moments[:, row] = _column_sums(regressors[row] * outcomes)
-        for col in range(row, 3):
-            gram[:, row, col] = gram[:, col, row] = _column_sums(
-                regressors[row] * regressors[col]
-            )
-    singular = ~(np.linalg.cond(gram) < _MAX_CONDITION)
-    gram[singular] = np.eye(3)
-    inverse = np.linalg.inv(gram)
-    coefficients = (inverse * moments[:, None, :]).sum(axis=2)
-    residuals = outcomes - sum(
-        regressors[k] * coefficients[:, k][None, :] for k in range(3)
-    )
+    regressors = [np.ones_like(treatments), treatments, exposure]
+    name = "exposure_regression"
+    if covariates is not None:
+        regressors += _centred(prep, _covariate_columns(prep, covariates, treatments.shape[1]))
+        name = "exposure_regression_adjusted"
+    p = len(regressors)
+    coefficients, inverse, residuals, singular = _batched_ols(regressors, outcomes)
     # Row X of (D^T D)^{-1} applied to each unit's regressor vector d_i.
-    leverage_x = sum(regressors[k] * inverse[:, 2, k][None, :] for k in range(3))
+    leverage_x = sum(regressors[k] * inverse[:, 2, k][None, :] for k in range(p))
     contributions = n_units * leverage_x * residuals
-    var = (n_units / (n_units - 3.0)) * _column_sums(leverage_x**2 * residuals**2)
+    var = (n_units / (n_units - float(p))) * _column_sums(leverage_x**2 * residuals**2)
     estimate = np.where(singular, np.nan, coefficients[:, 2])
     standard_error = np.where(singular, np.nan, _safe_sqrt(var))
     contributions[:, singular] = np.nan
-    return EstimateBatch(
-        "exposure_regression", "hc1", estimate, standard_error, contributions
-    )
+    return EstimateBatch(name, "hc1", estimate, standard_error, contributions)
 
 
 # --------------------------------------------------------------------------

@@ -4,7 +4,8 @@ The direct-effect estimators compare two arms and the exposure regression is
 an OLS fit, so with small samples their Wald statistics are closer to a
 Student t than to a normal; under ``reference_distribution = "auto"`` they
 use t quantiles with n - 2 (two arms) or n - 3 (three coefficients) degrees
-of freedom, as the two-sample t test of Cohen (1988, ch. 2) does.  The
+of freedom, as the two-sample t test of Cohen (1988, ch. 2) does, less one
+per further coefficient of a covariate-adjusted regression.  The
 network spillover estimators and the totals have no such degrees of freedom
 and use the normal.  For the sizes this tool plans the two agree to a few
 thousandths; the choice matters only for small studies.
@@ -51,14 +52,27 @@ def quantile(p: float, df: float | None = None) -> float:
     return float(scipy.stats.t.ppf(p, df))
 
 
-def reference_distribution(setting: str, estimand: str, estimator: str, units: int) -> ReferenceDistribution:
-    """Which distribution the planned test of ``estimator`` refers to (see the module docstring)."""
+def reference_distribution(
+    setting: str, estimand: str, estimator: str, units: int, covariates: int = 0
+) -> ReferenceDistribution:
+    """Which distribution the planned test of ``estimator`` refers to (see the module docstring).
+
+    ``covariates`` is the number of baseline covariates: Lin's regression
+    spends 2 degrees of freedom on each (the covariate and its interaction
+    with treatment), the adjusted exposure regression one.
+
+    >>> reference_distribution("auto", "direct", "lin", 100, covariates=2).name
+    't(94)'
+    """
     if setting == "normal":
         return ReferenceDistribution()
-    if estimand == "direct" and units > 2:
-        return ReferenceDistribution(units - 2)
-    if estimand == "spillover" and estimator == "exposure_regression" and units > 3:
-        return ReferenceDistribution(units - 3)
+    parameters = {"lin": 2 + 2 * covariates}.get(estimator, 2)
+    if estimand == "direct" and units > parameters:
+        return ReferenceDistribution(units - parameters)
+    if estimand == "spillover" and estimator.startswith("exposure_regression"):
+        parameters = 3 + (covariates if estimator.endswith("_adjusted") else 0)
+        if units > parameters:
+            return ReferenceDistribution(units - parameters)
     return ReferenceDistribution()
 
 

@@ -398,7 +398,7 @@ def _design_point(
     null_summary: dict[tuple[str, str, str], tuple[float, float, float, float, float]] = {}
     for key in keys:
         estimand, estimator, _ = key
-        reference = reference_distribution(design.reference_distribution, estimand, estimator, point.units)
+        reference = reference_distribution(design.reference_distribution, estimand, estimator, point.units, scenario.n_covariates)
         critical = critical_value(alpha, alternative, reference.df)
         multiplier = mde_multiplier(alpha, target, alternative, reference.df)
         est, se, _ = stack_run(null_draws, null_label(estimand), key)

@@ -197,7 +197,7 @@ def summarise_design_point(scenario: Scenario, point: DesignPoint, draws: Sequen
     records = []
     for key in draws[0].estimates:
         estimand, estimator, variance = key
-        reference = reference_distribution(scenario.design.reference_distribution, estimand, estimator, point.units)
+        reference = reference_distribution(scenario.design.reference_distribution, estimand, estimator, point.units, scenario.n_covariates)
         z = critical_value(alpha, alternative, reference.df)
         z_ci = critical_value(alpha, "two-sided", reference.df)
         est = np.stack([d.estimates[key] for d in draws])
@@ -423,9 +423,10 @@ def _scenario_warnings(scenario: Scenario) -> list[str]:
             + "; two_hop_psd works at any size"
         )
     outcome = scenario.outcome
-    if "exposure_regression" in scenario.estimators.spillover:
+    regressions = [s for s in scenario.estimators.spillover if s.startswith("exposure_regression")]
+    if regressions:
         out.append(
-            "exposure_regression: OLS of y on own treatment and treated-neighbour share targets the spillover only "
+            f"{' and '.join(regressions)}: OLS of y on own treatment and treated-neighbour share targets the spillover only "
             "when it is linear with no interaction"
             + ("" if outcome.spillover_shape == "linear" and outcome.interaction == 0 else " (not so here: expect bias)")
             + "; its HC1 standard error ignores that neighbours share treated friends, so check its size"
@@ -436,7 +437,7 @@ def _scenario_warnings(scenario: Scenario) -> list[str]:
 def _point_warnings(scenario: Scenario, point: DesignPoint, draws: Sequence[GraphDraws]) -> list[str]:
     out = []
     where = f"n = {point.units}, pi = {point.treatment_probability:g}"
-    if "pc_balancing_corrected" in scenario.estimators.spillover:
+    if {"pc_balancing_corrected", "pc_balancing_corrected_adjusted"} & set(scenario.estimators.spillover):
         low = min(d.min_shrinkage for d in draws)
         if low < 0.5:
             out.append(f"{where}: the corrected PC-balancing estimator divides by r_j as small as {low:.2f} (< 0.5); its variance may be large")

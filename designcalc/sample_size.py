@@ -176,7 +176,7 @@ class _Sizes:
             draws.append(simulate_graph(self.scenario, point, g, runs=run, batch_size=self.batch_size))
             self.tick()
         design = self.scenario.design
-        reference = reference_distribution(design.reference_distribution, key[0], key[1], n)
+        reference = reference_distribution(design.reference_distribution, key[0], key[1], n, self.scenario.n_covariates)
         critical = critical_value(design.significance_level, design.alternative, reference.df)
         est, se, _ = stack_run(draws, label, key)
         ok = np.isfinite(est) & np.isfinite(se)
@@ -190,7 +190,7 @@ class _Sizes:
         if not draws or key not in draws[0].runs[ALTERNATIVE].estimates:
             return None
         design = self.scenario.design
-        reference = reference_distribution(design.reference_distribution, key[0], key[1], n)
+        reference = reference_distribution(design.reference_distribution, key[0], key[1], n, self.scenario.n_covariates)
         critical = critical_value(design.significance_level, design.alternative, reference.df)
         est, se, truth = stack_run(draws, ALTERNATIVE, key)
         ok = np.isfinite(est) & np.isfinite(se)
@@ -239,7 +239,7 @@ def _predicted_power(scenario: Scenario, key: tuple[str, str, str], n: float, po
     """Normal-approximation power of the feasible test at n from the local trend."""
     sd, se, mean = _local_trend(points, n)
     design = scenario.design
-    reference = reference_distribution(design.reference_distribution, key[0], key[1], max(int(round(n)), 4))
+    reference = reference_distribution(design.reference_distribution, key[0], key[1], max(int(round(n)), 4), scenario.n_covariates)
     q = critical_value(design.significance_level, design.alternative, reference.df)
     if design.alternative == "greater":
         return float(scipy.stats.norm.cdf((mean - q * se) / sd))
@@ -445,7 +445,7 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
                 required_units=st.above if reached else None,
                 units_low=float("nan"), units_high=float("nan"), verified_units=None,
                 verified_power=float("nan"), verified_power_mc_se=float("nan"), relative_precision=float("nan"),
-                reference_distribution=reference_distribution(scenario.design.reference_distribution, key[0], key[1], points[-1].units if points else start).name,
+                reference_distribution=reference_distribution(scenario.design.reference_distribution, key[0], key[1], points[-1].units if points else start, scenario.n_covariates).name,
                 sd_slope=_sd_slope(_trend_points(sizes, key)), reason=st.reason, points=points, flags=tuple(flags),
             )
         )
@@ -637,7 +637,7 @@ def _refine(scenario: Scenario, sizes: _Sizes, st: _KeyState, precision: float, 
     if n_hat > limit:
         flags.append(f"the estimate lies beyond the search limit of {limit:,} units")
     points = sizes.points(key)
-    reference = reference_distribution(scenario.design.reference_distribution, key[0], key[1], n_v)
+    reference = reference_distribution(scenario.design.reference_distribution, key[0], key[1], n_v, scenario.n_covariates)
     # The test's size at the verified n: an over-rejecting test reaches its power "too early".
     size, size_se = sizes.null_size(n_v, key, G)
     alpha = scenario.design.significance_level

@@ -18,6 +18,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Callable, Sequence
 
+from designcalc.covariates import Covariate, CovariateError, CovariateLoadings, covariate_loadings
 from designcalc.density import DensityRule
 from designcalc.edge_models import KERNEL_FAMILIES, BlockModel, EdgeModel, KernelModel
 from designcalc.errors import DesignCalcError, ScenarioError
@@ -34,13 +35,20 @@ __all__ = [
     "DIRECT_ESTIMATORS",
     "DIRECT_VARIANCES",
     "SPILLOVER_ESTIMATORS",
+    "ADJUSTED_ESTIMATORS",
     "ALTERNATIVES",
     "REFERENCE_DISTRIBUTIONS",
 ]
 
-DIRECT_ESTIMATORS = ("hajek", "horvitz_thompson")
+DIRECT_ESTIMATORS = ("hajek", "horvitz_thompson", "lin")
 DIRECT_VARIANCES = ("neyman", "two_hop", "two_hop_psd")
-SPILLOVER_ESTIMATORS = ("pc_balancing_corrected", "pc_balancing", "centred_ht", "exposure_regression")
+SPILLOVER_ESTIMATORS = (
+    "pc_balancing_corrected", "pc_balancing", "centred_ht", "exposure_regression",
+    "pc_balancing_corrected_adjusted", "pc_balancing_adjusted", "centred_ht_adjusted", "exposure_regression_adjusted",
+)
+#: Estimators that use the baseline covariates (they need a [[covariates]] entry).
+ADJUSTED_ESTIMATORS = ("lin",) + tuple(name for name in SPILLOVER_ESTIMATORS if name.endswith("_adjusted"))
+_MAX_COVARIATES = 10
 ALTERNATIVES = ("two-sided", "greater", "less")
 REFERENCE_DISTRIBUTIONS = ("auto", "normal")
 
@@ -114,9 +122,15 @@ class Scenario:
     design: Design
     estimators: EstimatorPlan
     simulation: SimulationSettings
+    covariates: CovariateLoadings | None = None  # None: no baseline covariates
     source: str = "<scenario>"
     sha256: str = ""
     text: str = field(default="", repr=False)
+
+    @property
+    def n_covariates(self) -> int:
+        """How many baseline covariates the scenario states."""
+        return self.covariates.count if self.covariates is not None else 0
 
 
 # ---------------------------------------------------------------------------
@@ -305,7 +319,8 @@ def _range_text(low: float | None, high: float | None, low_open: bool, high_open
 # ---------------------------------------------------------------------------
 # Section readers
 # ---------------------------------------------------------------------------
-_TOP_KEYS = ("scenario", "population", "network", "outcome", "design", "estimators", "simulation")
+_TOP_KEYS = ("scenario", "population", "network", "outcome", "covariates", "design", "estimators", "simulation")
+_COVARIATE_KEYS = ("name", "r_squared", "through_type")
 _SCENARIO_KEYS = ("name", "description")
 _POPULATION_KEYS = ("units", "max_units")
 _NETWORK_KEYS = ("model", "block_shares", "block_affinity", "kernel", "degree_ratio", "length_scale", "floor", "amplitudes", "expression", "density")
@@ -466,13 +481,52 @@ def _read_design(top: _Table) -> Design:
     return Design(tuple(sorted(probs)), alpha, power, alternative, reference)
 
 
-def _read_estimators(top: _Table, outcome: OutcomeModel) -> EstimatorPlan:
+def _read_covariates(top: _Table, outcome: OutcomeModel, network: EdgeModel) -> CovariateLoadings | None:
+    """The ``[[covariates]]`` array of tables: one entry per baseline covariate."""
+    top.used.add("covariates")
+    if not top.has("covariates"):
+        return None
+    entries = top.data["covariates"]
+    if isinstance(entries, dict):
+        raise top.error("covariates", "must be an array of tables, one per covariate", hint="write each covariate as a [[covariates]] section (double brackets)")
+    if not isinstance(entries, list) or not entries or not all(isinstance(e, dict) for e in entries):
+        raise top.error("covariates", "must be one or more [[covariates]] sections", received=entries)
+    if len(entries) > _MAX_COVARIATES:
+        raise top.error("covariates", f"at most {_MAX_COVARIATES} covariates", received=len(entries))
+    items = []
+    for i, entry in enumerate(entries):
+        t = _Table(entry, f"covariates[{i}]", top.file, _COVARIATE_KEYS)
+        name = t.text("name", f"covariate {i + 1}")
+        r2 = t.number("r_squared", low=0, high=0.99)
+        share = t.number("through_type", 0.0, low=0, high=1)
+        t.finish()
+        if name in [c.name for c in items]:
+            raise t.error("name", "is used by another covariate", received=name)
+        items.append(Covariate(name, r2, share))
+    try:
+        return covariate_loadings(tuple(items), outcome, network)
+    except CovariateError as exc:
+        key = "covariates" if exc.index is None else f"covariates[{exc.index}].r_squared"
+        raise ScenarioError(str(exc), file=top.file, key=key, hint="lower r_squared, or change through_type") from None
+
+
+def _read_estimators(top: _Table, outcome: OutcomeModel, has_covariates: bool) -> EstimatorPlan:
     t = top.table("estimators", _ESTIMATOR_KEYS, required=False)
+    # With covariates the default plan shows adjusted and unadjusted estimators side by side.
+    default_direct = ("hajek", "lin") if has_covariates else ("hajek",)
+    default_spillover = ("pc_balancing_corrected", "centred_ht")
+    if has_covariates:
+        default_spillover = ("pc_balancing_corrected", "pc_balancing_corrected_adjusted", "centred_ht", "centred_ht_adjusted")
     if t is None:
-        return EstimatorPlan(centre=outcome.baseline)
-    direct = t.choice_list("direct", DIRECT_ESTIMATORS, ("hajek",))
+        return EstimatorPlan(direct=default_direct, spillover=default_spillover, centre=outcome.baseline)
+    direct = t.choice_list("direct", DIRECT_ESTIMATORS, default_direct)
     variance = t.choice_list("direct_variance", DIRECT_VARIANCES, ("neyman",))
-    spillover = t.choice_list("spillover", SPILLOVER_ESTIMATORS, ("pc_balancing_corrected", "centred_ht"))
+    spillover = t.choice_list("spillover", SPILLOVER_ESTIMATORS, default_spillover)
+    if not has_covariates:
+        for key, names in (("direct", direct), ("spillover", spillover)):
+            adjusted = [name for name in names if name in ADJUSTED_ESTIMATORS]
+            if adjusted:
+                raise t.error(key, f"{adjusted[0]!r} adjusts for baseline covariates, but the scenario states none", hint="add a [[covariates]] section with its r_squared, or remove the adjusted estimator")
     # The centring constant must be fixed before the data exist; the baseline
     # is the planner's own prior guess of the outcome level.
     centre = t.number("centre", outcome.baseline, low=-1e12, high=1e12)
@@ -541,7 +595,8 @@ def parse_scenario(text: str, *, source: str = "<scenario>") -> Scenario:
     network, density = _read_network(top)
     outcome = _read_outcome(top, network)
     design = _read_design(top)
-    estimators = _read_estimators(top, outcome)
+    covariates = _read_covariates(top, outcome, network)
+    estimators = _read_estimators(top, outcome, covariates is not None)
     simulation = _read_simulation(top)
     top.finish()
     for n in population.units:
@@ -560,6 +615,7 @@ def parse_scenario(text: str, *, source: str = "<scenario>") -> Scenario:
         design=design,
         estimators=estimators,
         simulation=simulation,
+        covariates=covariates,
         source=source,
         sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
         text=text,

@@ -83,6 +83,7 @@ def block_model_scenario(
     design: Mapping[str, Any] | None = None,
     estimators: Mapping[str, Any] | None = None,
     simulation: Mapping[str, Any] | None = None,
+    covariates: Sequence[Mapping[str, Any]] | None = None,
     source: str = "<scenario>",
 ) -> designcalc.Scenario:
     """A validated block-model scenario built from TOML text.
@@ -101,6 +102,9 @@ def block_model_scenario(
         the Hajek direct estimator with the Neyman variance, the centred HT
         spillover estimator and no eigenvectors.  A key given as None is
         left out of the file.
+    covariates
+        ``[[covariates]]`` entries (written as an inline array of tables);
+        none by default.
     source
         The file name the scenario quotes in messages.
     """
@@ -119,6 +123,8 @@ def block_model_scenario(
         ),
         "simulation": _table({"graphs": graphs, "assignments_per_graph": assignments, "seed": seed}, simulation),
     }
+    if covariates:
+        data = {"covariates": [dict(c) for c in covariates], **data}
     return designcalc.parse_scenario(to_toml(data), source=source)
 
 
@@ -131,6 +137,9 @@ def no_network_scenario(
     graphs: int = 40,
     assignments: int = 25,
     seed: int = 3,
+    covariates: Sequence[Mapping[str, Any]] | None = None,
+    estimators: Mapping[str, Any] | None = None,
+    simulation: Mapping[str, Any] | None = None,
 ) -> designcalc.Scenario:
     """The no-network reduction: one block, mean degree 0.001 (nearly every unit isolated), no spillover, noise SD 1.
 
@@ -139,9 +148,11 @@ def no_network_scenario(
     SD 1 in both arms).  The centred HT spillover estimator is planned
     because some spillover estimator must be (the PC-balancing variants are
     undefined on a near-empty graph).  ``reference`` is
-    ``design.reference_distribution``.
+    ``design.reference_distribution``; ``covariates``, ``estimators`` and
+    ``simulation`` pass through to :func:`block_model_scenario`.
     """
     return block_model_scenario(
         units=[units], mean_degree=0.001, probabilities=probabilities, graphs=graphs, assignments=assignments, seed=seed,
         outcome={"direct_effect": direct}, design={"reference_distribution": reference}, source="no_network.toml",
+        covariates=covariates, estimators=estimators, simulation=simulation,
     )

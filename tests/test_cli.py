@@ -66,8 +66,8 @@ def test_power_json_has_the_documented_fields() -> None:
     required = {"estimand", "estimator", "variance_estimator", "units", "treatment_probability", "true_effect", "mean_estimate",
                 "bias", "sd", "power", "power_mc_se", "oracle_power", "size", "coverage", "replicates", "graphs"}
     assert data["results"] and all(required <= set(r) for r in data["results"])
-    # 2 direct estimators x 2 variances + 4 spillover + 4 totals, as planned in the demo.
-    assert len(data["results"]) == 12
+    # 2 direct estimators x 2 variances + lin (hc2) + 6 spillover + 6 totals, as planned in the demo.
+    assert len(data["results"]) == 17
     assert {r["replicates"] for r in data["results"] if r["estimand"] == "direct"} == {6}
 
 
@@ -77,4 +77,4 @@ def test_power_csv_has_a_header_and_rows() -> None:
     assert result.returncode == 0, result.stderr
     lines = result.stdout.strip().splitlines()
     assert lines[0].startswith("estimand,estimator,variance_estimator")
-    assert len(lines) == 13
+    assert len(lines) == 18  # header + 17 planned tests

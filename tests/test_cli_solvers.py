@@ -93,11 +93,11 @@ def test_mde_json_records_hold_the_formula_mde_and_its_interval() -> None:
 
 
 def test_mde_csv_without_verification_has_one_row_per_test() -> None:
-    """`--no-verify --format csv`: a header and one formula-only row per planned test (12 in Lake Orrin)."""
+    """`--no-verify --format csv`: a header and one formula-only row per planned test (17 in Lake Orrin)."""
     out = _ok("mde", LAKE, "-n", "200", "-p", "0.5", *TINY, "--no-verify", "--format", "csv").stdout
     rows = list(csv.DictReader(io.StringIO(out)))
     assert out.startswith("estimand,estimator,variance_estimator,units,treatment_probability,reference_distribution")
-    assert len(rows) == 12
+    assert len(rows) == 17
     assert {r["method"] for r in rows} == {"formula (not verified)"}
 
 
@@ -121,7 +121,7 @@ def test_size_json_and_csv_report_the_same_simulated_points() -> None:
     args = ("size", LAKE, "-p", "0.5", "--max-units", "800", *TINY, *PRECISE)
     data = _json(*args)
     rows = list(csv.DictReader(io.StringIO(_ok(*args, "--format", "csv").stdout)))
-    assert len(rows) == len(data["results"]) == 12
+    assert len(rows) == len(data["results"]) == 17
     for record, row in zip(data["results"], rows):
         assert record["status"] in ("reached", "not reachable", "reached at the smallest size")
         assert record["points"] and all(p["units"] <= 800 for p in record["points"])
@@ -153,7 +153,7 @@ def test_compare_json_marks_exactly_one_best_per_test_and_ties_by_the_documented
     groups: dict[tuple, list[dict]] = {}
     for r in data["results"]:
         groups.setdefault((r["units"], r["estimand"], r["estimator"], r["variance_estimator"]), []).append(r)
-    assert len(groups) == 12 and all(len(g) == 2 for g in groups.values())
+    assert len(groups) == 17 and all(len(g) == 2 for g in groups.values())
     for members in groups.values():
         best = [r for r in members if r["best"]]
         assert len(best) == 1

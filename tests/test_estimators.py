@@ -20,11 +20,13 @@ from designcalc.estimators import (
     combine_total,
     estimate_direct_hajek,
     estimate_direct_ht,
+    estimate_direct_lin,
     estimate_spillover_exposure_regression,
     estimate_spillover_ht,
     estimate_spillover_pc,
     estimate_spillover_pc_corrected,
     prepare_graph,
+    residualise_on_covariates,
     treated_neighbour_fraction,
 )
 
@@ -912,3 +914,124 @@ def test_corrected_pc_raises_when_shrinkage_vanishes(
         estimate_spillover_pc_corrected(
             prep, treatments, treatments, treatment_probability=PI
         )
+
+
+# --------------------------------------------------------------------------
+# Covariate-adjusted estimators (Lin 2013; residualised spillover estimators)
+# --------------------------------------------------------------------------
+
+
+def _covariate_batch(
+    adjacency: sp.sparse.csr_array, n_columns: int, seed: int, n_covariates: int = 2
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Treatments, outcomes that depend on the covariates (with a treatment interaction), covariates."""
+    treatments, outcomes = _simulated_batch(adjacency, n_columns, seed)
+    rng = np.random.default_rng(seed + 1)
+    covariates = rng.normal(loc=3.0, size=(adjacency.shape[0], n_columns, n_covariates))
+    outcomes = outcomes + 0.8 * covariates[:, :, 0] - 0.5 * treatments * covariates[:, :, -1]
+    return treatments, outcomes, covariates
+
+
+def test_lin_matches_statsmodels_hc2(medium_graph: sp.sparse.csr_array) -> None:
+    """Lin's estimate and SE equal statsmodels OLS on (1, W, C - Cbar, W (C - Cbar)) with cov_type='HC2'."""
+    prep = prepare_graph(medium_graph, n_eigenvectors=0)
+    treatments, outcomes, covariates = _covariate_batch(medium_graph, 4, seed=31)
+    lin = estimate_direct_lin(prep, treatments, outcomes, treatment_probability=PI, covariates=covariates)
+    assert lin.estimator == "lin" and lin.variance_estimator == "hc2"
+    for b in range(4):
+        centred = covariates[:, b, :] - covariates[:, b, :].mean(axis=0)
+        design = np.column_stack([np.ones(prep.n_units), treatments[:, b], centred, treatments[:, [b]] * centred])
+        # Outside reference: statsmodels OLS, HC2 (MacKinnon & White 1985);
+        # the interacted form is Lin (2013), Ann. Appl. Stat. 7(1):295-318.
+        fit = sm.OLS(outcomes[:, b], design).fit(cov_type="HC2")
+        assert lin.estimate[b] == pytest.approx(fit.params[1], rel=1e-10, abs=1e-12)
+        assert lin.standard_error[b] == pytest.approx(fit.bse[1], rel=1e-10)
+    # Contributions are n l_i e_i: mean zero by the normal equations.
+    np.testing.assert_allclose(lin.contributions.mean(axis=0), 0.0, atol=1e-9)
+
+
+def test_lin_without_covariates_is_hajek_with_neyman_variance(medium_graph: sp.sparse.csr_array) -> None:
+    """With no covariate columns Lin's estimator is the difference in means and HC2 is s1^2/n1 + s0^2/n0 (Neyman 1923)."""
+    prep = prepare_graph(medium_graph, n_eigenvectors=0)
+    treatments, outcomes = _simulated_batch(medium_graph, 5, seed=32)
+    lin = estimate_direct_lin(prep, treatments, outcomes, treatment_probability=PI, covariates=np.zeros((prep.n_units, 5, 0)))
+    hajek = estimate_direct_hajek(prep, treatments, outcomes, treatment_probability=PI)
+    np.testing.assert_allclose(lin.estimate, hajek.estimate, rtol=1e-12)
+    np.testing.assert_allclose(lin.standard_error, hajek.standard_error, rtol=1e-10)
+
+
+def test_lin_nan_when_an_arm_cannot_fit_its_slopes(medium_graph: sp.sparse.csr_array) -> None:
+    """With fewer treated units than covariates + 1 the interacted fit is singular: NaN, not a number."""
+    prep = prepare_graph(medium_graph, n_eigenvectors=0)
+    _, outcomes, covariates = _covariate_batch(medium_graph, 1, seed=33)
+    treatments = np.zeros((prep.n_units, 1))
+    treatments[:2] = 1.0  # two treated units, two covariates plus a level to fit
+    lin = estimate_direct_lin(prep, treatments, outcomes, treatment_probability=PI, covariates=covariates)
+    assert np.isnan(lin.estimate[0]) and np.isnan(lin.standard_error[0])
+
+
+def test_adjusted_exposure_regression_matches_statsmodels_hc1(medium_graph: sp.sparse.csr_array) -> None:
+    """The X coefficient and HC1 SE with covariates equal statsmodels OLS on (1, W, X, C)."""
+    prep = prepare_graph(medium_graph, n_eigenvectors=0)
+    treatments, outcomes, covariates = _covariate_batch(medium_graph, 3, seed=34)
+    fit_batch = estimate_spillover_exposure_regression(
+        prep, treatments, outcomes, treatment_probability=PI, covariates=covariates
+    )
+    assert fit_batch.estimator == "exposure_regression_adjusted"
+    exposure = _dense_fraction(medium_graph, treatments)
+    for b in range(3):
+        design = np.column_stack([np.ones(prep.n_units), treatments[:, b], exposure[:, b], covariates[:, b, :]])
+        # Outside reference: statsmodels OLS, HC1 (MacKinnon & White 1985; from memory).
+        fit = sm.OLS(outcomes[:, b], design).fit(cov_type="HC1")
+        assert fit_batch.estimate[b] == pytest.approx(fit.params[2], rel=1e-9)
+        assert fit_batch.standard_error[b] == pytest.approx(fit.bse[2], rel=1e-9)
+
+
+def test_residualise_removes_covariate_slopes_and_keeps_the_level(medium_graph: sp.sparse.csr_array) -> None:
+    """Residuals are Y minus the OLS slopes on centred covariates (numpy lstsq), with the outcome mean kept; treatment is not used."""
+    prep = prepare_graph(medium_graph, n_eigenvectors=0)
+    treatments, outcomes, covariates = _covariate_batch(medium_graph, 3, seed=35)
+    residuals = residualise_on_covariates(prep, outcomes, covariates)
+    for b in range(3):
+        centred = covariates[:, b, :] - covariates[:, b, :].mean(axis=0)
+        slopes = np.linalg.lstsq(centred, outcomes[:, b] - outcomes[:, b].mean(), rcond=None)[0]
+        np.testing.assert_allclose(residuals[:, b], outcomes[:, b] - centred @ slopes, rtol=1e-10, atol=1e-10)
+        assert residuals[:, b].mean() == pytest.approx(outcomes[:, b].mean(), rel=1e-12)
+        # Orthogonal to every covariate: nothing linear in them is left.
+        np.testing.assert_allclose(centred.T @ (residuals[:, b] - residuals[:, b].mean()), 0.0, atol=1e-8)
+
+
+def test_centred_ht_on_residuals_stays_exactly_unbiased_with_fixed_slopes() -> None:
+    """Removing a fixed (pre-specified) covariate prediction keeps centred HT exactly unbiased over all 2^n assignments."""
+    # Horvitz & Thompson (1952): E[omega_i Y_j] is i's effect on j whatever
+    # fixed function of the baseline is subtracted from Y_j (CHECKS.md §5).
+    # The engine's fitted slopes add only an O(dbar / n) term, checked by
+    # simulation in tests/test_power.py.
+    adjacency = SMALL_GRAPHS["triangle_star_tail"]
+    _, tau_indirect = _brute_force_estimands(adjacency)
+    treatments, probability = _all_assignments(adjacency.shape[0])
+    outcomes = _outcome(treatments, _dense_fraction(adjacency, treatments))
+    baseline = np.random.default_rng(36).normal(size=adjacency.shape[0])
+    prep = prepare_graph(adjacency, n_eigenvectors=2)
+    spill = estimate_spillover_ht(prep, treatments, outcomes - 0.7 * baseline[:, None], treatment_probability=PI, centre=1.0)
+    assert _expectation(spill.estimate, probability) == pytest.approx(tau_indirect, abs=1e-10)
+
+
+def test_adjusted_estimators_batch_size_does_not_change_the_numbers(medium_graph: sp.sparse.csr_array) -> None:
+    """Lin, residualisation and the adjusted regression give bit-for-bit the same numbers column by column."""
+    prep = prepare_graph(medium_graph, n_eigenvectors=3)
+    treatments, outcomes, covariates = _covariate_batch(medium_graph, 6, seed=37)
+
+    def run(cols: list[int]) -> list[np.ndarray]:
+        W, Y, C = treatments[:, cols], outcomes[:, cols], covariates[:, cols, :]
+        lin = estimate_direct_lin(prep, W, Y, treatment_probability=PI, covariates=C)
+        reg = estimate_spillover_exposure_regression(prep, W, Y, treatment_probability=PI, covariates=C)
+        res = residualise_on_covariates(prep, Y, C)
+        pc = estimate_spillover_pc_corrected(prep, W, res, treatment_probability=PI)
+        return [lin.estimate, lin.standard_error, lin.contributions, reg.estimate, reg.standard_error, res, pc.estimate]
+
+    together = run(list(range(6)))
+    for column in range(6):
+        alone = run([column])
+        for a, b in zip(together, alone, strict=True):
+            np.testing.assert_array_equal(a[..., [column]] if a.ndim == 1 else a[:, [column]], b)

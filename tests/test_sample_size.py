@@ -79,6 +79,34 @@ def test_no_network_size_matches_cohen_two_sample_t(effect_size: float, tabled: 
 
 
 @pytest.mark.statistical
+def test_lin_adjusted_size_shrinks_by_one_minus_r_squared() -> None:
+    """With a covariate of R² = 0.6 the Lin test needs the two-sample t n at d / sqrt(1 - R²) (Borm, Fransen & Lemmens 2007; Bloom 1995)."""
+    effect, r_squared = 0.3, 0.6
+    # Outside reference: statsmodels' noncentral-t n per group at the
+    # covariate-adjusted effect size d / sqrt(1 - R²), the ANCOVA design
+    # factor of Borm, Fransen & Lemmens (2007, J. Clin. Epidemiol. 60:1234;
+    # from memory) and Bloom's (1995) sqrt(1 - R²) on the MDE scale.
+    per_group = TTestIndPower().solve_power(effect_size=effect / math.sqrt(1 - r_squared), alpha=0.05, power=0.8, ratio=1)
+    scenario = no_network_scenario(
+        units=150, direct=effect, reference="auto", covariates=[{"r_squared": r_squared}], estimators={"direct": ["hajek", "lin"]},
+    )
+    result = designcalc.required_sample_size(scenario)
+    (record,) = result.select(estimand="direct", estimator="lin")
+    assert record.status == "reached"
+    assert record.reference_distribution == f"t({record.verified_units - 4})"  # two more coefficients than Hajek
+    n_hat = math.sqrt(record.units_low * record.units_high) / 2
+    # Tolerance: the 95% MC interval widened to 4 SEs (log scale, as in the
+    # Cohen check), plus 1.5 units per group for what the reference leaves
+    # out: Bernoulli arm sizes (half a unit, see above) and the two
+    # estimated slopes (about one unit: variance factor 1 + 1/(n_arm - 3)).
+    widened = 4 / 1.959963984540054 * record.relative_precision
+    assert n_hat * math.exp(-widened) - 1.5 <= per_group <= n_hat * math.exp(widened) + 1.5
+    # Decisive: the unadjusted answer (Cohen's n at d = 0.3, 174.5 per group) is far outside.
+    assert n_hat * math.exp(widened) + 1.5 < 0.6 * TTestIndPower().solve_power(effect_size=effect, alpha=0.05, power=0.8, ratio=1)
+    assert abs(record.size - 0.05) <= 4 * record.size_mc_se
+
+
+@pytest.mark.statistical
 def test_uncentred_ht_under_fixed_density_is_not_reachable() -> None:
     """Under fixed density the uncentred HT spillover SD grows like n^{+1/2}: no size is reported, a reason is."""
     # Derivation (METHODS.md §3.2): with centre 0 each S_i = sum_j A_ij Y_j is

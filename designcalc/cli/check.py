@@ -22,6 +22,8 @@ def register(app: typer.Typer) -> None:
         console.print(f"[bold]{s.name}[/]  ({s.source}, sha256 {s.sha256[:12]}...)")
         console.print(f"network: {s.network.describe()}; {s.density.describe()}")
         console.print(f"outcome: {s.outcome.describe()}")
+        if result.covariate_note:
+            console.print(f"covariates: {result.covariate_note}", soft_wrap=True)
         console.print(f"regime: [bold]{result.regime}[/]. {result.regime_explanation}", soft_wrap=True)
         table = Table(title="What the density rule implies", title_justify="left")
         for col in ("units", "rho_n", "mean degree (target)", "mean degree (expected)", "one draw", "isolates", "clipped", "leading eigenvalues of E[A]"):
