@@ -29,6 +29,9 @@ def test_check_accepts_both_demo_scenarios() -> None:
         assert result.returncode == 0, result.stderr
         assert "regime:" in result.stdout
         assert "Exact estimands" in result.stdout
+    # The Lake Orrin demo states a baseline covariate: check reports it and Bloom's factor.
+    result = _run("check", "scenarios/lake_orrin_savings.toml")
+    assert "baseline savings (R² 0.5" in result.stdout and "sqrt(1 - R²) = 0.707" in result.stdout
 
 
 def test_check_rejects_a_bad_probability_with_the_key_and_no_traceback(tmp_path: Path) -> None:
