@@ -392,3 +392,34 @@ def test_binary_no_network_mde_matches_two_proportion_test(link: str, baseline: 
     _check_binary_direct(_hajek(result), control, 1000)
     for record in result.select(estimand="spillover"):
         assert record.method == "not reachable" and math.isnan(record.mde)
+
+
+@pytest.mark.statistical
+@pytest.mark.parametrize("link", ["identity", "logistic"])
+def test_binary_lin_null_se_shrinks_by_sqrt_one_minus_r_squared(link: str) -> None:
+    """Binary outcome, no network: Lin's SE under the null is sqrt(p (1 - p) (1 - R²) / (P (1 - P) N)), R² on the probability scale."""
+    units, r_squared = 1000, 0.3
+    baseline = 0.4 if link == "identity" else float(sp.special.logit(0.4))
+    scenario = block_model_scenario(
+        units=[units], mean_degree=0.001, seed=4, graphs=200,
+        outcome={"kind": "binary", "link": link, "baseline": baseline, "noise_sd": None, "direct_effect": 0.1 if link == "identity" else 0.4},
+        design={"reference_distribution": "normal"}, estimators={"direct": ["hajek", "lin"]},
+        covariates=[{"name": "baseline take-up", "r_squared": r_squared}], source="binary_covariate.toml",
+    )
+    result = designcalc.minimum_detectable_effects(scenario, verify=False)
+    (lin,) = result.select(estimand="direct", estimator="lin")
+    (hajek,) = result.select(estimand="direct", estimator="hajek", variance_estimator="neyman")
+    # Under the null both arms have p = 0.4, and the covariate explains R² of
+    # the 0/1 outcome's variance p (1 - p) in each (the scenario's definition,
+    # checked against statsmodels OLS in tests/test_covariates.py); the
+    # classical adjusted SE (Bloom 1995 with sigma² = p (1 - p)) follows.
+    p = 0.4
+    expected = math.sqrt(p * (1 - p) * (1 - r_squared) / (0.25 * units))
+    # Tolerance: 4 MC SEs of the simulated SD, plus the Bernoulli arm-size
+    # factor (0.1% at N = 1000) and the slopes' cost (1/N per arm, 0.1%).
+    slack = expected * (math.sqrt(bernoulli_variance_factor(units, 0.5)) - 1 + 2 / units)
+    assert abs(lin.standard_error - expected) <= 4 * lin.standard_error_mc_se + slack
+    unadjusted = math.sqrt(p * (1 - p) / (0.25 * units))
+    assert abs(hajek.standard_error - unadjusted) <= 4 * hajek.standard_error_mc_se + slack
+    # Decisive: the two differ by 16%, over ten MC SEs.
+    assert unadjusted - expected > 10 * lin.standard_error_mc_se
