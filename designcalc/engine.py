@@ -25,13 +25,13 @@ which estimators are planned.
 from __future__ import annotations
 
 from dataclasses import dataclass, field, replace
-from typing import Callable, Sequence
+from typing import Callable, Iterable, Sequence
 
 import numpy as np
 
 from designcalc.covariates import draw_covariates, latent_individual_scores
 from designcalc.estimands import Estimands, ExposureMoments, estimands_from_moments, exact_estimands, exposure_moments
-from designcalc.errors import ModelError
+from designcalc.errors import DesignCalcError, ModelError
 from designcalc.estimators import (
     EstimateBatch,
     GraphPreparation,
@@ -46,7 +46,7 @@ from designcalc.estimators import (
     prepare_graph,
     residualise_on_covariates,
 )
-from designcalc.networks import kernel_grid_cells, sample_network
+from designcalc.networks import SampledNetwork, kernel_grid_cells, sample_network
 from designcalc.outcomes import OutcomeModel
 from designcalc.scenario import Scenario
 
@@ -60,6 +60,8 @@ __all__ = [
     "RunDraws",
     "power_runs",
     "planned_keys",
+    "restrict_tests",
+    "example_network",
     "dropped_keys",
     "null_label",
     "ALTERNATIVE",
@@ -209,7 +211,22 @@ def planned_keys(scenario: Scenario, units: int) -> list[tuple[str, str, str]]:
     keys = [("direct", d, v) for d in plan.direct for v in _direct_variances(scenario, d, units)]
     keys += [("spillover", s, _VARIANCE_OF_SPILLOVER[s]) for s in plan.spillover]
     keys += [("total", f"{_total_direct(scenario, s)}+{s}", "linearised") for s in plan.spillover]
+    if plan.only_tests is not None:
+        keys = [k for k in keys if k in plan.only_tests]
     return keys
+
+
+def restrict_tests(scenario: Scenario, tests: Iterable[tuple[str, str, str]]) -> Scenario:
+    """The scenario with only ``tests`` planned (a subset of ``planned_keys``).
+
+    Every solver enumerates tests through ``planned_keys``, so a restricted
+    scenario computes only these; the random streams do not depend on which
+    tests are planned, so each test's numbers are those of the full run.
+    """
+    wanted = frozenset(tests)
+    if not wanted:
+        raise DesignCalcError("at least one planned test is needed")
+    return replace(scenario, estimators=replace(scenario.estimators, only_tests=wanted))
 
 
 def dropped_keys(scenario: Scenario, units: int) -> list[tuple[str, str, str]]:
@@ -382,6 +399,22 @@ def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int) -> _Prepa
         zeta = latent_individual_scores(scenario.outcome.kind, noise_all)
         covariates_all = draw_covariates(scenario.covariates, theta, zeta, covariate_rng)
     return _PreparedGraph(net, theta, prep, W_all, noise_all, covariates_all)
+
+
+def example_network(scenario: Scenario, point: DesignPoint, graph_index: int = 0) -> tuple[SampledNetwork, np.ndarray]:
+    """The network and first assignment the engine draws for graph ``graph_index`` of ``point``.
+
+    Uses the engine's own streams (same layout as ``simulate_graph``), so a
+    drawing in a report shows a network the simulation really used.  Returns
+    the network and a boolean vector of treated units.
+    """
+    types_rng, graph_rng = _graph_streams(scenario.simulation.seed, point.units, graph_index)
+    bounds = scenario.network.cell_bounds(kernel_grid_cells(point.units)) if scenario.network.kind == "kernel" else None
+    net = sample_network(scenario.network, scenario.density, point.units, types_rng=types_rng, graph_rng=graph_rng, cell_bounds=bounds)
+    assign_rng = _assignment_streams(scenario.simulation.seed, point, graph_index)[0]
+    # The whole (n, B) block is drawn as in _prepare so that column 0 is the engine's first assignment.
+    treated = assign_rng.random((point.units, scenario.simulation.assignments_per_graph))[:, 0] < point.treatment_probability
+    return net, treated
 
 
 def control_variance(model: OutcomeModel, theta: np.ndarray) -> float:

@@ -319,6 +319,7 @@ def simulate_power(
     adaptive: bool = False,
     max_graphs: int | None = None,
     relative_precision: float | None = None,
+    on_point: Callable[[DesignPoint, Sequence[GraphDraws]], None] | None = None,
 ) -> PowerResult:
     """Simulate the power of every planned estimator at every design point.
 
@@ -341,6 +342,10 @@ def simulate_power(
         from the target, or known to +/- ``relative_precision`` (default
         ``simulation.relative_precision``, read as power units: 0.03 is
         three percentage points).  Each record says how many graphs it used.
+    on_point
+        Called with each finished design point and its graphs' draws (the
+        raw estimates behind the records), for callers that need more than
+        the summaries: the report's sampling distributions and Holm power.
 
     Returns
     -------
@@ -384,6 +389,8 @@ def simulate_power(
                         if not adaptive or goal >= cap or _settled(summary, scenario.design.target_power, precision):
                             records.extend(summary)
                             warnings.extend(_point_warnings(scenario, point, draws))
+                            if on_point is not None:
+                                on_point(point, draws)
                     finished += 1
                     if progress is not None:
                         progress(EngineProgress(finished, total, time.perf_counter() - started))

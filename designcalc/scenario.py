@@ -92,6 +92,9 @@ class EstimatorPlan:
     spillover: tuple[str, ...] = ("pc_balancing_corrected", "centred_ht")
     centre: float = 0.0
     eigenvectors: int | None = None  # None: the eigenvalue rule of METHODS.md §3.3
+    # Not a scenario key: a run may restrict itself to some planned tests
+    # (engine.restrict_tests; the report's key answers).  None: every one.
+    only_tests: frozenset[tuple[str, str, str]] | None = None
 
 
 @dataclass(frozen=True)

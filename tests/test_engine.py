@@ -7,7 +7,12 @@ import pytest
 from scenario_text import block_model_scenario
 
 import designcalc
+from pathlib import Path
+
 from designcalc.engine import ESTIMANDS, DesignPoint, design_points, simulate_graph
+from designcalc.scenario import load_scenario
+
+DEMO = Path(__file__).parents[1] / "scenarios" / "lake_orrin_savings.toml"
 
 # A scenario exercising every estimator and variance estimator, for the
 # reproducibility checks (STYLE.md §3-§4).
@@ -333,3 +338,32 @@ def test_pc_balancing_removes_the_block_level_variance_of_uncentred_ht() -> None
     # Both are unbiased (METHODS §3.1, §3.3 corrected variant): 4 clustered MC SEs.
     assert abs(pc.bias) <= 4 * pc.bias_mc_se
     assert abs(ht.bias) <= 4 * ht.bias_mc_se
+
+
+def test_example_network_is_the_engines_graph_and_first_assignment():
+    """example_network returns the graph and first assignment simulate_graph used (same streams)."""
+    from designcalc.engine import _prepare, example_network
+
+    s = load_scenario(DEMO)
+    point = DesignPoint(300, 0.3)
+    net, treated = example_network(s, point, 2)
+    prepared = _prepare(s, point, 2)
+    assert (net.adjacency != prepared.net.adjacency).nnz == 0
+    assert np.array_equal(treated, prepared.W_all[:, 0] == 1)
+
+
+def test_restricting_tests_keeps_their_numbers():
+    """A scenario restricted to some planned tests gives those tests the full run's estimates exactly."""
+    from designcalc.engine import planned_keys, restrict_tests
+
+    s = load_scenario(DEMO)
+    point = DesignPoint(300, 0.5)
+    keys = planned_keys(s, 300)
+    chosen = [keys[0], keys[-1]]
+    restricted = restrict_tests(s, chosen)
+    assert planned_keys(restricted, 300) == chosen
+    full = simulate_graph(s, point, 0)
+    part = simulate_graph(restricted, point, 0)
+    assert set(part.estimates) == set(chosen)
+    for key in chosen:
+        assert np.array_equal(part.estimates[key], full.estimates[key])

@@ -12,7 +12,7 @@ from designcalc.errors import DesignCalcError
 
 app = typer.Typer(
     name="designcalc",
-    help="Plan randomized experiments on social networks: power, minimum detectable effects, sample sizes.",
+    help="Plan randomized experiments on social networks: power, minimum detectable effects, sample sizes, reports.",
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
@@ -28,13 +28,14 @@ def stdout_console() -> Console:
 
 
 def _register() -> None:
-    from designcalc.cli import check, compare, mde, power, size
+    from designcalc.cli import check, compare, mde, power, report, size
 
     check.register(app)
     power.register(app)
     mde.register(app)
     size.register(app)
     compare.register(app)
+    report.register(app)
 
 
 _register()

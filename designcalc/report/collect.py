@@ -1,0 +1,417 @@
+"""Compute everything a report shows, once, from one scenario and seed.
+
+The report runs the solvers the planner would run by hand (``check``,
+``power``, ``mde``, ``size``, ``compare``), keeps the raw estimates it needs
+for the sampling-distribution figure and for Holm's procedure (through
+``simulate_power``'s ``on_point`` hook, not by simulating again), and draws
+one network with the engine's own streams.  Every number of the report's
+tables and figures comes from the ``Report`` returned here; the renderers
+only format it.
+
+The key answers (required size and MDE) are solved for one test per
+estimand by default, the first planned estimator and variance estimator of
+each, because the size search over every planned test is the slow part;
+``ReportSettings.tests`` names others and ``all_tests`` solves for every
+one.  Restricting the tests never changes a test's numbers
+(``engine.restrict_tests``).
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import math
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+
+import numpy as np
+import scipy as sp
+
+from designcalc.compare import (
+    CompareResult,
+    compare_treatment_probabilities,
+    parse_test_spec,
+)
+from designcalc.diagnostics import ScenarioCheck, check_scenario
+from designcalc.engine import (
+    ESTIMANDS,
+    DesignPoint,
+    EngineProgress,
+    GraphDraws,
+    example_network,
+    planned_keys,
+    restrict_tests,
+)
+from designcalc.errors import DesignCalcError
+from designcalc.figures import SamplingSample
+from designcalc.inference import reference_distribution
+from designcalc.mde import MdeResult, minimum_detectable_effects
+from designcalc.multiplicity import (
+    bonferroni_alpha,
+    bonferroni_reject,
+    holm_reject,
+    holm_thresholds,
+    mde_inflation,
+    p_values,
+    sample_size_inflation,
+)
+from designcalc.power import (
+    PowerResult,
+    _override,
+    clustered_mean_se,
+    provenance,
+    simulate_power,
+)
+from designcalc.sample_size import SizeResult, required_sample_size
+from designcalc.scenario import Scenario
+
+__all__ = ["CostRow", "ExampleNetwork", "FamilyPowerRow", "MultipleTesting", "Report", "ReportSettings", "build_report"]
+
+Key = tuple[str, str, str]
+
+
+@dataclass(frozen=True)
+class ReportSettings:
+    """What a report computes beyond the scenario: which tests get key answers, precision, overrides.
+
+    ``tests`` are ``ESTIMAND[:ESTIMATOR[:VARIANCE]]`` specs (empty: the first
+    planned test of each estimand); ``precision`` is the relative half-width
+    of the 95% Monte Carlo interval asked of the MDE and the required size;
+    ``search_graphs`` is the number of graphs the size search starts from
+    (0: half the scenario's, at least 8; more are added until the precision
+    is met); ``compare_units`` is the size of the MDE-against-probability
+    comparison (0: the middle planned size, the lower of two).  ``units``,
+    ``treatment_probabilities``, ``graphs``, ``assignments_per_graph`` and
+    ``seed`` override the scenario, as on the command line.
+    """
+
+    tests: tuple[str, ...] = ()
+    all_tests: bool = False
+    precision: float = 0.1
+    search_graphs: int = 0
+    max_units: int | None = None
+    compare_units: int = 0
+    units: tuple[int, ...] = ()
+    treatment_probabilities: tuple[float, ...] = ()
+    graphs: int | None = None
+    assignments_per_graph: int | None = None
+    seed: int | None = None
+    batch_size: int = 16
+
+    def __post_init__(self) -> None:
+        if not 0 < self.precision <= 0.5:
+            raise DesignCalcError(f"`precision` must be in (0, 0.5] (relative half-width, e.g. 0.1 for ±10%); got {self.precision}")
+        for p in self.treatment_probabilities:
+            if not 0 < p < 1:
+                raise DesignCalcError(f"treatment probabilities must be in (0, 1); got {p}")
+        if self.search_graphs and self.search_graphs < 2:
+            raise DesignCalcError(f"`search_graphs` must be at least 2; got {self.search_graphs}")
+
+    def to_dict(self) -> dict[str, object]:
+        return {
+            "tests": list(self.tests), "all_tests": self.all_tests, "precision": self.precision,
+            "search_graphs": self.search_graphs, "max_units": self.max_units, "compare_units": self.compare_units,
+            "units": list(self.units), "treatment_probabilities": list(self.treatment_probabilities),
+            "graphs": self.graphs, "assignments_per_graph": self.assignments_per_graph, "seed": self.seed,
+        }
+
+
+@dataclass(frozen=True)
+class CostRow:
+    """What an adjusted level costs one hypothesis's test (normal approximation, METHODS-free: see multiplicity)."""
+
+    estimand: str
+    estimator: str
+    variance_estimator: str
+    treatment_probability: float
+    per_test_alpha: float
+    mde_factor: float
+    sample_size_factor: float
+    required_units: int | None
+    adjusted_units: int | None
+
+
+@dataclass(frozen=True)
+class FamilyPowerRow:
+    """Power of one hypothesis's test at one design point: alone, under Bonferroni, under Holm (same replicates)."""
+
+    units: int
+    treatment_probability: float
+    estimand: str
+    estimator: str
+    variance_estimator: str
+    power: float
+    power_mc_se: float
+    bonferroni_power: float
+    bonferroni_power_mc_se: float
+    holm_power: float
+    holm_power_mc_se: float
+    replicates: int
+
+
+@dataclass(frozen=True)
+class MultipleTesting:
+    """The family of hypotheses (one test per estimand), the adjusted levels and their costs."""
+
+    hypotheses: tuple[Key, ...]
+    alpha: float
+    alternative: str
+    target_power: float
+    bonferroni_alpha: float
+    holm_thresholds: tuple[float, ...]
+    costs: tuple[CostRow, ...]
+    power: tuple[FamilyPowerRow, ...]
+
+
+@dataclass(frozen=True, eq=False)
+class ExampleNetwork:
+    """One simulated network of the scenario, as the engine drew it, for the drawing."""
+
+    point: DesignPoint
+    adjacency: sp.sparse.csr_array
+    groups: np.ndarray | None
+    types: np.ndarray
+    treated: np.ndarray
+
+    @property
+    def mean_degree(self) -> float:
+        return float(self.adjacency.nnz / max(self.point.units, 1))
+
+
+@dataclass(frozen=True, eq=False)
+class Report:
+    """Everything one report shows: the results of each solver, the raw draws for figures, provenance."""
+
+    scenario: Scenario
+    settings: ReportSettings
+    tests: tuple[Key, ...]
+    check: ScenarioCheck
+    power: PowerResult
+    mde: MdeResult
+    size: SizeResult
+    compare: CompareResult
+    multiple_testing: MultipleTesting | None
+    samples: tuple[SamplingSample, ...]
+    sample_point: DesignPoint
+    network: ExampleNetwork
+    provenance: dict[str, object]
+    warnings: tuple[str, ...] = field(default=())
+
+    @property
+    def generated(self) -> str:
+        return str(self.provenance["utc_time"])
+
+
+def _chosen_tests(scenario: Scenario, settings: ReportSettings) -> tuple[Key, ...]:
+    units = scenario.population.units[0]
+    keys = planned_keys(scenario, units)
+    if settings.all_tests:
+        return tuple(keys)
+    if settings.tests:
+        chosen = [parse_test_spec(t, option="--test").resolve(scenario, units) for t in settings.tests]
+        return tuple(dict.fromkeys(chosen))
+    firsts = [next(k for k in keys if k[0] == e) for e in ESTIMANDS if any(k[0] == e for k in keys)]
+    return tuple(firsts)
+
+
+def _family(tests: Sequence[Key]) -> tuple[Key, ...]:
+    """One hypothesis per estimand: the first chosen test of each (several tests of one estimand are one hypothesis)."""
+    seen: dict[str, Key] = {}
+    for k in tests:
+        seen.setdefault(k[0], k)
+    return tuple(seen[e] for e in ESTIMANDS if e in seen)
+
+
+class _Capture:
+    """``on_point`` hook: keeps the hypotheses' statistics at every point and the raw estimates at one."""
+
+    def __init__(self, scenario: Scenario, family: Sequence[Key], tests: Sequence[Key], sample_point: DesignPoint) -> None:
+        self.scenario = scenario
+        self.family = tuple(family)
+        self.tests = tuple(tests)
+        self.sample_point = sample_point
+        self.p_values: dict[DesignPoint, np.ndarray] = {}  # (graphs, assignments, hypotheses)
+        self.samples: list[SamplingSample] = []
+
+    def __call__(self, point: DesignPoint, draws: Sequence[GraphDraws]) -> None:
+        design = self.scenario.design
+        columns = []
+        for key in self.family:
+            est = np.stack([d.estimates[key] for d in draws])
+            se = np.stack([d.standard_errors[key] for d in draws])
+            reference = reference_distribution(design.reference_distribution, key[0], key[1], point.units, self.scenario.n_covariates)
+            with np.errstate(divide="ignore", invalid="ignore"):
+                ok = np.isfinite(est) & np.isfinite(se) & (se > 0)
+                columns.append(np.where(ok, p_values(est / np.where(ok, se, 1.0), design.alternative, reference.df), np.nan))
+        if columns:
+            self.p_values[point] = np.stack(columns, axis=-1)
+        if point == self.sample_point:
+            for key in self.tests:
+                estimates = np.concatenate([d.estimates[key] for d in draws])
+                nulls = np.concatenate([d.null_estimates[key] for d in draws])
+                truth = float(np.mean([d.estimands.value(key[0]) for d in draws]))
+                self.samples.append(SamplingSample(*key, point.units, point.treatment_probability, nulls, estimates, truth))
+
+
+def _family_power(capture: _Capture, alpha: float) -> list[FamilyPowerRow]:
+    rows = []
+    for point, p in capture.p_values.items():
+        graphs, assignments, m = p.shape
+        flat = p.reshape(-1, m)
+        valid = ~np.isnan(flat)
+        decisions = {
+            "single": np.where(valid, flat <= alpha, False),
+            "bonferroni": bonferroni_reject(flat, alpha),
+            "holm": holm_reject(flat, alpha),
+        }
+        for j, key in enumerate(capture.family):
+            # Clustered by graph, as every Monte Carlo error of the tool; replicates whose test is
+            # undefined are left out of all three rates alike.
+            rates = {}
+            for name, d in decisions.items():
+                values = np.where(valid[:, j], d[:, j].astype(float), np.nan).reshape(graphs, assignments)
+                rates[name] = clustered_mean_se(values)
+            rows.append(
+                FamilyPowerRow(
+                    point.units, point.treatment_probability, *key,
+                    *rates["single"], *rates["bonferroni"], *rates["holm"], int(valid[:, j].sum()),
+                )
+            )
+    return rows
+
+
+def _costs(scenario: Scenario, family: Sequence[Key], size: SizeResult) -> list[CostRow]:
+    design = scenario.design
+    adjusted = bonferroni_alpha(design.significance_level, len(family))
+    mde_factor = mde_inflation(design.significance_level, adjusted, design.target_power, design.alternative)
+    n_factor = sample_size_inflation(design.significance_level, adjusted, design.target_power, design.alternative)
+    rows = []
+    for key in family:
+        for pi in design.treatment_probabilities:
+            found = [r for r in size.select(estimand=key[0], estimator=key[1], variance_estimator=key[2], treatment_probability=pi)]
+            required = found[0].required_units if found and found[0].status.startswith("reached") else None
+            rows.append(
+                CostRow(
+                    *key, pi, adjusted, mde_factor, n_factor, required,
+                    math.ceil(required * n_factor) if required is not None else None,
+                )
+            )
+    return rows
+
+
+def build_report(
+    scenario: Scenario,
+    settings: ReportSettings | None = None,
+    *,
+    progress: Callable[[str, EngineProgress], None] | None = None,
+) -> Report:
+    """Run every calculation a report shows and return it as plain data.
+
+    Parameters
+    ----------
+    scenario
+        A validated scenario.
+    settings
+        Which tests get key answers, the precision, overrides (``ReportSettings``).
+    progress
+        Called with the phase name ("power", "minimum detectable effects",
+        "sample size", "treatment probabilities") and the engine's progress.
+
+    Returns
+    -------
+    Report
+
+    Raises
+    ------
+    KeyboardInterrupt
+        When interrupted: a report is never built from partial results.
+
+    Examples
+    --------
+    >>> from pathlib import Path
+    >>> from designcalc import load_scenario
+    >>> s = load_scenario(Path(__file__).parents[2] / "scenarios" / "lake_orrin_savings.toml")
+    >>> r = build_report(s, ReportSettings(units=(200,), treatment_probabilities=(0.5,), graphs=4,
+    ...                  assignments_per_graph=4, precision=0.5, max_units=800))
+    >>> [k[0] for k in r.tests]
+    ['direct', 'spillover', 'total']
+    """
+    settings = settings or ReportSettings()
+    scenario = _override(
+        scenario, settings.units or None, settings.treatment_probabilities or None,
+        settings.graphs, settings.assignments_per_graph, settings.seed,
+    )
+    check = check_scenario(scenario)
+    tests = _chosen_tests(scenario, settings)
+    family = _family(tests)
+    solving = scenario if settings.all_tests else restrict_tests(scenario, tests)
+    units = scenario.population.units
+    sample_point = DesignPoint(units[-1], scenario.design.treatment_probabilities[0])
+    capture = _Capture(scenario, family, tests, sample_point)
+
+    def phase(name: str) -> Callable[[EngineProgress], None] | None:
+        return (lambda update: progress(name, update)) if progress is not None else None
+
+    G = scenario.simulation.graphs
+    search_graphs = settings.search_graphs or max(8, G // 2)
+    compare_units = settings.compare_units or units[(len(units) - 1) // 2]
+    power = simulate_power(scenario, batch_size=settings.batch_size, progress=phase("power"), on_point=capture)
+    _refuse_partial(power.partial)
+    mde = minimum_detectable_effects(
+        solving, relative_precision=settings.precision, batch_size=settings.batch_size, progress=phase("minimum detectable effects"),
+    )
+    _refuse_partial(mde.partial)
+    size = required_sample_size(
+        solving, graphs=search_graphs, relative_precision=settings.precision, max_units=settings.max_units,
+        batch_size=settings.batch_size, progress=phase("sample size"),
+    )
+    _refuse_partial(size.partial)
+    compare = compare_treatment_probabilities(
+        solving, units=[compare_units], batch_size=settings.batch_size, progress=phase("treatment probabilities"),
+    )
+    _refuse_partial(compare.partial)
+
+    point = DesignPoint(units[0], scenario.design.treatment_probabilities[0])
+    net, treated = example_network(scenario, point)
+    network = ExampleNetwork(point, net.adjacency, net.blocks, net.types, treated)
+
+    multiple = None
+    if len(family) > 1:
+        alpha = scenario.design.significance_level
+        multiple = MultipleTesting(
+            family, alpha, scenario.design.alternative, scenario.design.target_power,
+            bonferroni_alpha(alpha, len(family)), holm_thresholds(alpha, len(family)),
+            tuple(_costs(scenario, family, size)), tuple(_family_power(capture, alpha)),
+        )
+    record = _report_provenance(scenario, settings, tests, search_graphs, compare_units, size, mde)
+    warnings = tuple(dict.fromkeys([*check.warnings, *power.warnings, *mde.warnings, *size.warnings, *compare.warnings]))
+    return Report(
+        scenario, settings, tests, check, power, mde, size, compare, multiple, tuple(capture.samples), sample_point,
+        network, record, warnings,
+    )
+
+
+def _refuse_partial(partial: bool) -> None:
+    if partial:
+        raise KeyboardInterrupt
+
+
+def _report_provenance(
+    scenario: Scenario, settings: ReportSettings, tests: Sequence[Key], search_graphs: int, compare_units: int,
+    size: SizeResult, mde: MdeResult,
+) -> dict[str, object]:
+    import matplotlib
+
+    record = provenance(
+        scenario,
+        report_settings=settings.to_dict(),
+        key_answer_tests=[":".join(k) for k in tests],
+        relative_precision=settings.precision,
+        size_search_start_graphs=search_graphs,
+        size_search_max_units=size.provenance.get("max_units"),
+        max_graphs=mde.provenance.get("max_graphs"),
+        compare_units=compare_units,
+        matplotlib=matplotlib.__version__,
+    )
+    # One time stamp for the whole report (the solvers' own are dropped from its files).
+    record["utc_time"] = _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds")
+    return record

@@ -1,0 +1,280 @@
+"""The report's tables as plain data: one definition, rendered alike in every format.
+
+Each ``Table`` holds raw values (full precision, ``None`` for missing) and a
+column spec saying how to show them; HTML, Markdown and LaTeX show the same
+formatted cell text (``format_cell``), CSV and JSON keep the raw values, so
+the formats agree by construction and a test parses them back.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+from designcalc.report.collect import Report
+
+__all__ = ["MISSING", "Column", "Table", "format_cell", "report_tables"]
+
+MISSING = "-"
+
+
+@dataclass(frozen=True)
+class Column:
+    """One column: header, JSON/CSV field name, and how cells are shown.
+
+    ``kind`` is ``"text"``, ``"int"``, ``"fixed"`` (``digits`` decimals) or
+    ``"sig"`` (``digits`` significant digits).
+    """
+
+    header: str
+    key: str
+    kind: str = "text"
+    digits: int = 3
+
+
+@dataclass(frozen=True)
+class Table:
+    id: str
+    title: str
+    caption: str
+    columns: tuple[Column, ...]
+    rows: tuple[tuple[object, ...], ...]
+
+    def records(self) -> list[dict[str, object]]:
+        return [{c.key: _json_value(v) for c, v in zip(self.columns, row)} for row in self.rows]
+
+    def to_dict(self) -> dict[str, object]:
+        return {
+            "id": self.id, "title": self.title, "caption": self.caption,
+            "columns": [{"header": c.header, "key": c.key, "kind": c.kind, "digits": c.digits} for c in self.columns],
+            "rows": self.records(),
+        }
+
+    def cells(self) -> list[list[str]]:
+        """Every row as shown in HTML, Markdown and LaTeX."""
+        return [[format_cell(v, c) for c, v in zip(self.columns, row)] for row in self.rows]
+
+
+def _json_value(value: object) -> object:
+    """JSON has no nan or infinity: missing values are null, infinities the strings "inf"/"-inf"."""
+    if isinstance(value, float):
+        if math.isnan(value):
+            return None
+        if math.isinf(value):
+            return "inf" if value > 0 else "-inf"
+    return value
+
+
+def format_cell(value: object, column: Column) -> str:
+    """The text of a cell: numbers by the column's rule, missing values as ``MISSING``.
+
+    >>> format_cell(0.81234, Column("power", "power", "fixed", 3)), format_cell(23511.0, Column("n", "n", "int"))
+    ('0.812', '23511')
+    >>> format_cell(float("nan"), Column("MDE", "mde", "sig", 3)), format_cell(0.0004567, Column("MDE", "mde", "sig", 3))
+    ('-', '0.000457')
+    """
+    if value is None:
+        return MISSING
+    if column.kind == "text":
+        return str(value)
+    x = float(value)  # type: ignore[arg-type]
+    if math.isnan(x):
+        return MISSING
+    if math.isinf(x):
+        return "inf" if x > 0 else "-inf"
+    if column.kind == "int":
+        return str(int(round(x)))
+    if column.kind == "fixed":
+        return f"{x:.{column.digits}f}"
+    return f"{x:.{column.digits}g}"
+
+
+_TEST_COLUMNS = (Column("estimator", "estimator"), Column("variance", "variance_estimator"))
+
+
+def key_answers_table(report: Report) -> Table:
+    units = report.scenario.population.units
+    columns = (
+        Column("estimand", "estimand"), *_TEST_COLUMNS, Column("treatment probability", "treatment_probability", "fixed", 2),
+        Column("required units", "required_units", "int"), Column("95% MC low", "units_low", "int"),
+        Column("95% MC high", "units_high", "int"), Column("status", "status"),
+        *(Column(f"MDE at {n} units", f"mde_at_{n}", "sig", 3) for n in units),
+    )
+    rows = []
+    for key in report.tests:
+        for pi in report.scenario.design.treatment_probabilities:
+            size = report.size.select(estimand=key[0], estimator=key[1], variance_estimator=key[2], treatment_probability=pi)
+            s = size[0] if size else None
+            mdes = []
+            for n in units:
+                m = report.mde.select(estimand=key[0], estimator=key[1], variance_estimator=key[2], treatment_probability=pi, units=n)
+                mdes.append(m[0].mde if m else None)
+            rows.append((
+                *key, pi,
+                s.required_units if s else None, s.units_low if s else None, s.units_high if s else None,
+                s.status if s else "not computed", *mdes,
+            ))
+    return Table(
+        "key-answers", "Key answers",
+        f"Units needed for {report.scenario.design.target_power:.0%} power and the minimum detectable effect "
+        "(outcome units) at each planned size, per estimand; 95% Monte Carlo intervals of the required size.",
+        columns, tuple(rows),
+    )
+
+
+def power_table(report: Report) -> Table:
+    columns = (
+        Column("units", "units", "int"), Column("treatment probability", "treatment_probability", "fixed", 2),
+        Column("estimand", "estimand"), *_TEST_COLUMNS, Column("true effect", "true_effect", "sig", 4),
+        Column("power", "power", "fixed", 3), Column("MC se", "power_mc_se", "fixed", 3),
+        Column("bias", "bias", "sig", 3), Column("bias MC se", "bias_mc_se", "sig", 2), Column("SD", "sd", "sig", 3),
+        Column("mean SE", "mean_standard_error", "sig", 3), Column("oracle power", "oracle_power", "fixed", 3),
+        Column("replicates", "replicates", "int"), Column("flags", "flags"),
+    )
+    rows = tuple(
+        (r.units, r.treatment_probability, r.estimand, r.estimator, r.variance_estimator, r.true_effect, r.power, r.power_mc_se,
+         r.bias, r.bias_mc_se, r.sd, r.mean_standard_error, r.oracle_power, r.replicates, "; ".join(r.flags))
+        for r in report.power.records
+    )
+    return Table(
+        "power", "Power of every planned test",
+        "Simulated power at each planned size and treatment probability with its Monte Carlo standard error "
+        "(clustered by graph); oracle power uses the true standard deviation instead of the estimated SE.",
+        columns, rows,
+    )
+
+
+def size_coverage_table(report: Report) -> Table:
+    columns = (
+        Column("units", "units", "int"), Column("treatment probability", "treatment_probability", "fixed", 2),
+        Column("estimand", "estimand"), *_TEST_COLUMNS, Column("size", "size", "fixed", 3),
+        Column("size MC se", "size_mc_se", "fixed", 3), Column("coverage", "coverage", "fixed", 3),
+        Column("coverage MC se", "coverage_mc_se", "fixed", 3), Column("flags", "flags"),
+    )
+    rows = tuple(
+        (r.units, r.treatment_probability, r.estimand, r.estimator, r.variance_estimator, r.size, r.size_mc_se,
+         r.coverage, r.coverage_mc_se, "; ".join(r.flags))
+        for r in report.power.records
+    )
+    alpha = report.scenario.design.significance_level
+    return Table(
+        "size-coverage", "Size and coverage of the feasible tests",
+        f"Rejection rate when the tested effect is zero (nominal {alpha:g}) and coverage of the 95% confidence "
+        "interval, with Monte Carlo standard errors; flags mark tests that miss their nominal level.",
+        columns, rows,
+    )
+
+
+def mde_table(report: Report) -> Table:
+    columns = (
+        Column("units", "units", "int"), Column("treatment probability", "treatment_probability", "fixed", 2),
+        Column("estimand", "estimand"), *_TEST_COLUMNS, Column("MDE", "mde", "sig", 4),
+        Column("95% MC low", "mde_low", "sig", 4), Column("95% MC high", "mde_high", "sig", 4),
+        Column("MDE (SD units)", "mde_sd_units", "sig", 3), Column("SE", "standard_error", "sig", 3),
+        Column("method", "method"), Column("flags", "flags"),
+    )
+    rows = tuple(
+        (r.units, r.treatment_probability, r.estimand, r.estimator, r.variance_estimator, r.mde, r.mde_low, r.mde_high,
+         r.mde_sd_units, r.standard_error, r.method, "; ".join(r.flags))
+        for r in report.mde.records
+    )
+    return Table(
+        "mde", "Minimum detectable effects",
+        "Smallest effect (outcome units, and in SDs of the untreated outcome) detected with the target power, "
+        "with its 95% Monte Carlo interval.",
+        columns, rows,
+    )
+
+
+def sample_size_table(report: Report) -> Table:
+    columns = (
+        Column("treatment probability", "treatment_probability", "fixed", 2), Column("estimand", "estimand"), *_TEST_COLUMNS,
+        Column("status", "status"), Column("required units", "required_units", "int"),
+        Column("95% MC low", "units_low", "int"), Column("95% MC high", "units_high", "int"),
+        Column("verified power", "verified_power", "fixed", 3), Column("MC se", "verified_power_mc_se", "fixed", 3),
+        Column("size", "size", "fixed", 3), Column("size MC se", "size_mc_se", "fixed", 3), Column("reason", "reason"),
+    )
+    rows = tuple(
+        (r.treatment_probability, r.estimand, r.estimator, r.variance_estimator, r.status, r.required_units, r.units_low,
+         r.units_high, r.verified_power, r.verified_power_mc_se, r.size, r.size_mc_se, r.reason)
+        for r in report.size.records
+    )
+    return Table(
+        "sample-size", "Required sample size",
+        "Units needed for the target power, found by simulation and verified at the answer (power and test size there).",
+        columns, rows,
+    )
+
+
+def probability_table(report: Report) -> Table:
+    columns = (
+        Column("units", "units", "int"), Column("treatment probability", "treatment_probability", "fixed", 2),
+        Column("estimand", "estimand"), *_TEST_COLUMNS, Column("MDE", "mde", "sig", 4),
+        Column("95% MC low", "mde_low", "sig", 4), Column("95% MC high", "mde_high", "sig", 4),
+        Column("best", "best"), Column("tied with best", "tied_with_best"),
+    )
+    rows = tuple(
+        (r.units, r.treatment_probability, r.estimand, r.estimator, r.variance_estimator, r.mde, r.mde_low, r.mde_high,
+         "yes" if r.best else "", "yes" if r.tied_with_best else "")
+        for r in report.compare.rows
+    )
+    return Table(
+        "treatment-probabilities", "Minimum detectable effect against treatment probability",
+        "Formula MDE (multiplier x simulated null SD) at one size for a grid of treatment probabilities; "
+        "tied: within two combined Monte Carlo SEs of the best.",
+        columns, rows,
+    )
+
+
+def density_table(report: Report) -> Table:
+    columns = (
+        Column("units", "units", "int"), Column("rho_n", "rho", "sig", 3), Column("target mean degree", "target_mean_degree", "sig", 3),
+        Column("expected mean degree", "expected_mean_degree", "sig", 3), Column("one draw", "realised_mean_degree", "sig", 3),
+        Column("share isolated (expected)", "expected_share_isolated", "sig", 3),
+        Column("largest edge probability", "max_edge_probability", "sig", 3),
+    )
+    rows = tuple(
+        (s.density.units, s.density.rho, s.density.target_mean_degree, s.density.expected_mean_degree, s.realised_mean_degree,
+         s.expected_share_isolated, s.density.max_edge_probability)
+        for s in report.check.sizes
+    )
+    return Table("density", "What the density rule implies", "Edge-probability scale and mean degree at each planned size.", columns, rows)
+
+
+def multiple_testing_tables(report: Report) -> list[Table]:
+    mt = report.multiple_testing
+    if mt is None:
+        return []
+    levels = Table(
+        "multiple-testing-cost", "Multiple testing: adjusted levels and their cost",
+        f"{len(mt.hypotheses)} hypotheses at family-wise α = {mt.alpha:g}: Bonferroni tests each at α/m = {mt.bonferroni_alpha:.4g}; "
+        "Holm's smallest threshold is the same, so planning each test at α/m guarantees its power under Holm too. "
+        "Factors by the normal approximation (SE ∝ 1/√n).",
+        (Column("estimand", "estimand"), *_TEST_COLUMNS, Column("treatment probability", "treatment_probability", "fixed", 2),
+         Column("per-test α", "per_test_alpha", "sig", 4), Column("MDE factor", "mde_factor", "fixed", 4),
+         Column("sample-size factor", "sample_size_factor", "fixed", 4), Column("required units", "required_units", "int"),
+         Column("units at adjusted α", "adjusted_units", "int")),
+        tuple((c.estimand, c.estimator, c.variance_estimator, c.treatment_probability, c.per_test_alpha, c.mde_factor,
+               c.sample_size_factor, c.required_units, c.adjusted_units) for c in mt.costs),
+    )
+    power = Table(
+        "multiple-testing-power", "Multiple testing: power of each hypothesis under Bonferroni and Holm",
+        "Rejection rates on the same simulated replicates as the power table, unadjusted, with Bonferroni and with Holm's "
+        "step-down procedure (Holm 1979), with Monte Carlo standard errors.",
+        (Column("units", "units", "int"), Column("treatment probability", "treatment_probability", "fixed", 2),
+         Column("estimand", "estimand"), *_TEST_COLUMNS, Column("power", "power", "fixed", 3),
+         Column("MC se", "power_mc_se", "fixed", 3), Column("Bonferroni", "bonferroni_power", "fixed", 3),
+         Column("MC se", "bonferroni_power_mc_se", "fixed", 3), Column("Holm", "holm_power", "fixed", 3),
+         Column("MC se", "holm_power_mc_se", "fixed", 3)),
+        tuple((r.units, r.treatment_probability, r.estimand, r.estimator, r.variance_estimator, r.power, r.power_mc_se,
+               r.bonferroni_power, r.bonferroni_power_mc_se, r.holm_power, r.holm_power_mc_se) for r in mt.power),
+    )
+    return [levels, power]
+
+
+def report_tables(report: Report) -> list[Table]:
+    """Every table of the report, in reading order."""
+    return [
+        key_answers_table(report), power_table(report), size_coverage_table(report), mde_table(report),
+        sample_size_table(report), probability_table(report), density_table(report), *multiple_testing_tables(report),
+    ]
