@@ -40,21 +40,27 @@ from matplotlib.colors import Normalize
 from matplotlib.figure import Figure
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
-from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+from matplotlib.ticker import FuncFormatter, NullFormatter
 
 from designcalc.engine import ESTIMANDS
 from designcalc.errors import DesignCalcError
 
 if TYPE_CHECKING:
     from designcalc.compare import CompareRow
+    from designcalc.mde import MdeRecord
+    from designcalc.power import PowerRecord
     from designcalc.sample_size import SizeRecord
+
+_SIMULATED = "simulated"  # status of curves built from a power table: nothing was solved for
 
 __all__ = [
     "PALETTE",
     "SamplingSample",
     "mde_probability_figure",
+    "mde_units_figure",
     "network_figure",
     "power_curve_figure",
+    "power_table_figure",
     "sampling_distribution_figure",
     "save_figure",
     "svg_text",
@@ -235,7 +241,7 @@ def power_curve_figure(records: Sequence[SizeRecord], *, target_power: float, ti
                 ax.plot(units, power, color=colour, marker=marker, markersize=3.5, linewidth=1.2)
                 if record.status.startswith("reached") and record.required_units is not None:
                     required_shown |= _mark_required_units(ax, record, target, colour, marker)
-                elif not record.status.startswith("reached"):
+                elif not record.status.startswith("reached") and record.status != _SIMULATED:
                     unreached.append(label)
             ax.axhline(target, color=_GREY, linestyle="--", linewidth=0.9)
             if drawn:
@@ -310,6 +316,102 @@ def _mark_required_units(ax: Axes, record: SizeRecord, target: float, colour: st
 
 
 # ------------------------------------------------------- MDE by probability
+
+
+def power_table_figure(records: Sequence[PowerRecord], *, target_power: float, title: str = "") -> Figure:
+    """Power of every planned test against the planned sizes (``designcalc power --figures``).
+
+    The power table's records, one line per test and treatment probability
+    through the planned sizes, drawn as ``power_curve_figure`` draws the
+    sample-size search (bands of +- 1.96 Monte Carlo SE, the target line)
+    but with no required size marked: nothing was solved for.
+
+    Examples
+    --------
+    >>> from pathlib import Path
+    >>> from designcalc import load_scenario, simulate_power
+    >>> s = load_scenario(Path(__file__).parents[1] / "scenarios" / "lake_orrin_savings.toml")
+    >>> r = simulate_power(s, units=[200, 400], treatment_probabilities=[0.5], graphs=2, assignments_per_graph=3)
+    >>> [ax.get_title() for ax in power_table_figure(r.records, target_power=0.8).axes]
+    ['direct', 'spillover', 'total']
+    """
+    from designcalc.sample_size import SizePoint, SizeRecord
+
+    records = _nonempty(records, "records")
+    groups: dict[tuple[str, str, str, float], list[PowerRecord]] = {}
+    for r in records:
+        groups.setdefault((r.estimand, r.estimator, r.variance_estimator, r.treatment_probability), []).append(r)
+    curves = [
+        SizeRecord(
+            estimand=key[0], estimator=key[1], variance_estimator=key[2], treatment_probability=key[3], status=_SIMULATED,
+            required_units=None, units_low=math.nan, units_high=math.nan, verified_units=None, verified_power=math.nan,
+            verified_power_mc_se=math.nan, relative_precision=math.nan, reference_distribution=members[0].reference_distribution,
+            sd_slope=math.nan, reason="",
+            points=tuple(
+                SizePoint(m.units, m.power, m.power_mc_se, m.sd, m.mean_standard_error, m.mean_estimate, m.true_effect, m.replicates)
+                for m in sorted(members, key=lambda m: m.units)
+            ),
+        )
+        for key, members in groups.items()
+    ]
+    return power_curve_figure(curves, target_power=target_power, title=title)
+
+
+def mde_units_figure(records: Sequence[MdeRecord], *, title: str = "") -> Figure:
+    """The minimum detectable effect of each test against the planned sizes (``designcalc mde --figures``).
+
+    One panel per estimand; per test (and treatment probability, when there
+    are several) the MDE at each size on a log scale of units, with its 95%
+    Monte Carlo interval as error bars.  Non-finite MDEs (not reachable) are
+    skipped.
+
+    Examples
+    --------
+    >>> from pathlib import Path
+    >>> from designcalc import load_scenario, minimum_detectable_effects
+    >>> s = load_scenario(Path(__file__).parents[1] / "scenarios" / "lake_orrin_savings.toml")
+    >>> r = minimum_detectable_effects(s, units=[200, 400], treatment_probabilities=[0.5], graphs=3,
+    ...                                assignments_per_graph=3, verify=False)
+    >>> mde_units_figure(r.records).axes[0].get_ylabel().splitlines()
+    ['minimum detectable effect', '(outcome units)']
+    """
+    records = _nonempty(records, "records")
+    estimands = _estimand_order(r.estimand for r in records)
+    several_probabilities = len({r.treatment_probability for r in records}) > 1
+    styles = _SeriesStyles()
+    with mpl.rc_context(_STYLE):
+        fig, axes = _panel_row(len(estimands), title)
+        for ax, estimand in zip(axes, estimands):
+            by_test: dict[str, list[MdeRecord]] = {}
+            for r in records:
+                if r.estimand == estimand:
+                    label = test_label(r.estimator, r.variance_estimator)
+                    if several_probabilities:
+                        label += f", P = {r.treatment_probability:g}"
+                    by_test.setdefault(label, []).append(r)
+            drawn = 0
+            for label, rows in by_test.items():
+                finite = sorted((r for r in rows if _finite(r.mde)), key=lambda r: r.units)
+                if not finite:
+                    continue
+                drawn += 1
+                colour, marker = styles.get(label)
+                units = np.array([float(r.units) for r in finite])
+                mde = np.array([float(r.mde) for r in finite])
+                below = np.array([m - r.mde_low if _finite(r.mde_low) and r.mde_low <= m else 0.0 for r, m in zip(finite, mde)])
+                above = np.array([r.mde_high - m if _finite(r.mde_high) and r.mde_high >= m else 0.0 for r, m in zip(finite, mde)])
+                ax.errorbar(units, mde, yerr=[below, above], color=colour, marker=marker, markersize=3.5, linewidth=1.2,
+                            elinewidth=0.9, capsize=2.0)
+            if drawn:
+                _log_units_axis(ax)
+                ax.set_ylim(bottom=0.0)
+            else:
+                _say_empty(ax, "no finite MDE")
+            ax.set_xlabel("units in the study (log scale)")
+            ax.set_ylabel("minimum detectable effect\n(outcome units)")
+            ax.set_title(estimand)
+        _figure_legend(fig, styles.handles())
+    return fig
 
 
 def mde_probability_figure(rows: Sequence[CompareRow], *, units: int | None = None, title: str = "") -> Figure:
@@ -884,13 +986,24 @@ def _figure_legend(fig: Figure, handles: Sequence[Line2D | Patch]) -> None:
         widest = max(len(str(h.get_label())) for h in handles)
         width_chars = fig.get_figwidth() * 17  # about 17 legend characters per inch at 7 pt, with the marker
         ncols = max(1, min(4, len(handles), int(width_chars // (widest + 6))))
+        rows = -(-len(handles) // ncols)
+        if rows > 3:  # a long legend (every planned test) gets its own height instead of squeezing the panels
+            fig.set_figheight(fig.get_figheight() + 0.16 * (rows - 3))
         fig.legend(handles=list(handles), loc="outside lower center", ncols=ncols, frameon=False)
 
 
 def _log_units_axis(ax: Axes) -> None:
     """A log-scale axis of unit counts labelled 100, 200, 500, 1,000, ... (no 2 x 10^2 clutter)."""
     ax.set_xscale("log")
-    ax.xaxis.set_major_locator(LogLocator(base=10.0, subs=(1.0, 2.0, 5.0)))
+    low, high = ax.get_xlim()
+    # 1-2-5 ticks inside the range; a narrow range (200 to 400 units) with fewer than two of them
+    # gets ticks at the ends and the geometric middle, rounded, instead of matplotlib's crowded fallback.
+    ticks = [m * 10.0**k for k in range(int(math.floor(math.log10(low))), int(math.ceil(math.log10(high))) + 1)
+             for m in (1.0, 2.0, 5.0) if low <= m * 10.0**k <= high]
+    if len(ticks) < 2:
+        data = sorted({float(x) for line in ax.get_lines() for x in np.atleast_1d(line.get_xdata()) if low <= float(x) <= high})
+        ticks = data if 2 <= len(data) <= 6 else sorted({float(f"{t:.2g}") for t in (low * 1.05, math.sqrt(low * high), high / 1.05)})
+    ax.set_xticks(ticks)
     ax.xaxis.set_major_formatter(FuncFormatter(lambda x, _: f"{x:,.0f}"))
     ax.xaxis.set_minor_formatter(NullFormatter())
 

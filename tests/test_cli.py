@@ -81,3 +81,30 @@ def test_power_csv_has_a_header_and_rows() -> None:
     lines = result.stdout.strip().splitlines()
     assert lines[0].startswith("estimand,estimator,variance_estimator")
     assert len(lines) == 18  # header + 17 planned tests
+
+
+def test_figures_option_writes_each_commands_figure_next_to_its_table(tmp_path: Path) -> None:
+    """--figures DIR on check, power, mde, size and compare writes that command's figure as PNG and SVG."""
+    folder = tmp_path / "figs"
+    small = ["--graphs", "3", "--assignments", "3"]
+    runs = {
+        "network": ["check", str(DEMO)],
+        "power_by_units": ["power", str(DEMO), "-n", "200", "-n", "400", "-p", "0.5", *small],
+        "mde_by_units": ["mde", str(DEMO), "-n", "200", "-n", "400", "-p", "0.5", "--no-verify", *small],
+        "mde_by_probability_200": ["compare", str(DEMO), "-n", "200", "-p", "0.3", "-p", "0.5", *small],
+        "power_curves": ["size", str(DEMO), "-p", "0.5", "--graphs", "4", "--assignments", "3", "--precision", "0.5", "--max-units", "800"],
+    }
+    for stem, args in runs.items():
+        run = _run(*args, "--figures", str(folder))
+        assert run.returncode == 0, run.stderr
+        assert f"figure: {folder / stem}.png" in run.stderr
+        assert (folder / f"{stem}.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+        assert (folder / f"{stem}.svg").read_text().lstrip().startswith("<?xml")
+
+
+def test_figures_option_rejects_a_file_before_simulating(tmp_path: Path) -> None:
+    """--figures naming a file is a user error (exit 2, the option named), found before any simulation."""
+    target = tmp_path / "taken"
+    target.write_text("x")
+    run = _run("power", str(DEMO), "--figures", str(target))
+    assert run.returncode == 2 and "--figures" in run.stderr and "Traceback" not in run.stderr

@@ -5,19 +5,26 @@ from __future__ import annotations
 import typer
 from rich.table import Table
 
-from designcalc.cli.output import ScenarioFile
+from designcalc.cli.output import (
+    FiguresDir,
+    ScenarioFile,
+    check_figures_dir,
+    write_figures,
+)
 from designcalc.diagnostics import check_scenario
-from designcalc.scenario import load_scenario
+from designcalc.scenario import Scenario, load_scenario
 
 
 def register(app: typer.Typer) -> None:
     @app.command("check")
-    def check(scenario: ScenarioFile) -> None:
+    def check(scenario: ScenarioFile, figures: FiguresDir = None) -> None:
         """Validate a scenario and show the density, isolates, spectrum, estimands and regime it implies."""
         from designcalc.cli.main import stdout_console
 
         console = stdout_console()
+        check_figures_dir(figures)
         result = check_scenario(load_scenario(scenario))
+        write_figures(figures, lambda: _network_figure(result.scenario))
         s = result.scenario
         console.print(f"[bold]{s.name}[/]  ({s.source}, sha256 {s.sha256[:12]}...)")
         console.print(f"network: {s.network.describe()}; {s.density.describe()}")
@@ -48,3 +55,19 @@ def register(app: typer.Typer) -> None:
             console.print(f"[yellow]warning:[/] {w}", soft_wrap=True)
         if not result.warnings:
             console.print("no warnings")
+
+
+def _network_figure(scenario: Scenario) -> dict[str, object]:
+    """One network the simulation would use at the smallest planned size: "does this look like my villages?"."""
+    from designcalc.engine import DesignPoint, example_network
+    from designcalc.figures import network_figure
+
+    point = DesignPoint(scenario.population.units[0], scenario.design.treatment_probabilities[0])
+    net, treated = example_network(scenario, point)
+    mean_degree = net.adjacency.nnz / max(point.units, 1)
+    return {
+        "network": network_figure(
+            net.adjacency, treated=treated, groups=net.blocks, types=net.types, seed=scenario.simulation.seed % 2**32,
+            title=f"{scenario.name}: one simulated network, mean degree {mean_degree:.1f}, treatment probability {point.treatment_probability:g}",
+        )
+    }

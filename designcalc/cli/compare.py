@@ -12,10 +12,12 @@ from rich.console import Console
 
 from designcalc.cli.output import (
     Assignments,
+    FiguresDir,
     OutputFormat,
     ScenarioFile,
     Seed,
     Units,
+    check_figures_dir,
     emit,
     flag_references,
     fmt,
@@ -30,6 +32,7 @@ from designcalc.cli.output import (
     print_footer,
     records_csv,
     simulate_with_progress,
+    write_figures,
 )
 from designcalc.compare import (
     CompareResult,
@@ -186,6 +189,7 @@ def register(app: typer.Typer) -> None:
         objective: Annotated[str | None, typer.Option(help="Pick one probability per size: the smallest MDE of this test, ESTIMAND[:ESTIMATOR[:VARIANCE]].")] = None,
         cap: Annotated[list[str] | None, typer.Option(help="With --objective: only probabilities where MDE(SPEC) <= VALUE (outcome units), as SPEC=VALUE; repeat for several.")] = None,
         output_format: OutputFormat = "table",
+        figures: FiguresDir = None,
     ) -> None:
         """Compare treatment probabilities by SE, MDE and test size for every planned test, and pick one by a joint criterion."""
         loaded = load_checked(
@@ -203,4 +207,17 @@ def register(app: typer.Typer) -> None:
         def table(res: CompareResult, console: Console) -> None:
             render_table(res, console, scenario=loaded, verify=verify, resolved=resolved_tests(loaded, sizes, criterion))
 
-        emit(simulate_with_progress(solve, known_total=False), output_format, table=table, csv_text=render_csv)
+        check_figures_dir(figures)
+        result = simulate_with_progress(solve, known_total=False)
+        write_figures(figures, lambda: _figures(result))
+        emit(result, output_format, table=table, csv_text=render_csv)
+
+
+def _figures(result: CompareResult) -> dict[str, object]:
+    from designcalc.figures import mde_probability_figure
+
+    sizes = sorted({r.units for r in result.rows})
+    return {
+        f"mde_by_probability_{n}": mde_probability_figure(result.rows, units=n, title=f"{result.scenario_name}: MDE against treatment probability")
+        for n in sizes
+    }

@@ -10,11 +10,13 @@ from rich.console import Console
 
 from designcalc.cli.output import (
     Assignments,
+    FiguresDir,
     OutputFormat,
     ScenarioFile,
     Seed,
     TreatmentProbabilities,
     Units,
+    check_figures_dir,
     emit,
     flag_references,
     fmt,
@@ -31,6 +33,7 @@ from designcalc.cli.output import (
     records_csv,
     simulate_with_progress,
     span,
+    write_figures,
 )
 from designcalc.mde import AGREEMENT_Z, MdeRecord, MdeResult, minimum_detectable_effects
 from designcalc.scenario import Scenario
@@ -125,6 +128,7 @@ def register(app: typer.Typer) -> None:
         max_graphs: Annotated[int | None, graphs_option("Most graphs per design point spent on precision; overrides simulation.max_graphs.")] = None,
         verify: Annotated[bool, typer.Option("--verify/--no-verify", help="Verify each formula MDE by simulation (default), or report the formula only.")] = True,
         output_format: OutputFormat = "table",
+        figures: FiguresDir = None,
     ) -> None:
         """Minimum detectable direct, spillover and total effects of every planned test, verified by simulation."""
         loaded = load_checked(scenario, output_format, treatment_probability, precision=precision, max_graphs=max_graphs, graphs=graphs)
@@ -137,4 +141,15 @@ def register(app: typer.Typer) -> None:
         def table(res: MdeResult, console: Console) -> None:
             render_table(res, console, scenario=loaded, precision=requested, max_graphs=cap)
 
-        emit(simulate_with_progress(solve, known_total=False), output_format, table=table, csv_text=render_csv)
+        check_figures_dir(figures)
+        result = simulate_with_progress(solve, known_total=False)
+        write_figures(figures, lambda: _figures(result))
+        emit(result, output_format, table=table, csv_text=render_csv)
+
+
+def _figures(result: MdeResult) -> dict[str, object]:
+    from designcalc.figures import mde_units_figure
+
+    if not result.records:
+        return {}
+    return {"mde_by_units": mde_units_figure(result.records, title=f"{result.scenario_name}: minimum detectable effects")}

@@ -36,11 +36,13 @@ from designcalc.scenario import Scenario, load_scenario
 __all__ = [
     "FORMATS",
     "Assignments",
+    "FiguresDir",
     "OutputFormat",
     "ScenarioFile",
     "Seed",
     "TreatmentProbabilities",
     "Units",
+    "check_figures_dir",
     "check_format",
     "check_max_graphs",
     "check_precision",
@@ -64,6 +66,7 @@ __all__ = [
     "render_rows_csv",
     "simulate_with_progress",
     "span",
+    "write_figures",
 ]
 
 FORMATS = ("table", "json", "csv")
@@ -81,6 +84,37 @@ TreatmentProbabilities = Annotated[
 Assignments = Annotated[int | None, typer.Option(min=1, max=100_000, help="Assignments per graph.")]
 Seed = Annotated[int | None, typer.Option(min=0, help="Root seed, overriding simulation.seed.")]
 OutputFormat = Annotated[str, typer.Option("--format", help="table, json or csv.")]
+FiguresDir = Annotated[
+    Path | None,
+    typer.Option("--figures", help="Also write this command's figure (PNG and SVG) into this folder; created if missing."),
+]
+
+
+def check_figures_dir(folder: Path | None) -> None:
+    """``--figures`` must name a folder (or a new one under an existing folder); checked before any simulation."""
+    if folder is None:
+        return
+    if folder.exists() and not folder.is_dir():
+        raise DesignCalcError(f"--figures {folder}: a file of that name exists; give a folder")
+    if not folder.exists() and not folder.absolute().parent.is_dir():
+        raise DesignCalcError(f"--figures {folder}: the parent folder {folder.absolute().parent} does not exist")
+
+
+def write_figures(folder: Path | None, make: Callable[[], Mapping[str, Any]]) -> None:
+    """Save the figures ``make()`` returns (stem -> matplotlib figure) as PNG and SVG in ``folder``; paths go to stderr."""
+    if folder is None:
+        return
+    from designcalc.cli.main import stderr_console
+    from designcalc.figures import save_figure
+
+    folder.mkdir(exist_ok=True)
+    console = stderr_console()
+    figures = make()
+    if not figures:
+        console.print("--figures: nothing to draw (no finished results)")
+    for stem, fig in figures.items():
+        paths = save_figure(fig, folder / stem)
+        console.print("figure: " + ", ".join(str(p) for p in paths), soft_wrap=True)
 
 
 def graphs_option(help_text: str) -> Any:

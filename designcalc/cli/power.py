@@ -10,11 +10,13 @@ from rich.console import Console
 
 from designcalc.cli.output import (
     Assignments,
+    FiguresDir,
     OutputFormat,
     ScenarioFile,
     Seed,
     TreatmentProbabilities,
     Units,
+    check_figures_dir,
     emit,
     fmt,
     graphs_option,
@@ -24,8 +26,10 @@ from designcalc.cli.output import (
     print_footer,
     records_csv,
     simulate_with_progress,
+    write_figures,
 )
 from designcalc.power import PowerResult, simulate_power
+from designcalc.scenario import Scenario
 
 _CSV_FIELDS = (
     "estimand", "estimator", "variance_estimator", "units", "treatment_probability", "true_effect",
@@ -80,6 +84,7 @@ def register(app: typer.Typer) -> None:
         seed: Seed = None,
         adaptive: Annotated[bool, typer.Option("--adaptive", help="Add graphs (doubling, up to simulation.max_graphs) until every test's power is clearly above or below the target or known to within simulation.relative_precision (in power units).")] = False,
         output_format: OutputFormat = "table",
+        figures: FiguresDir = None,
     ) -> None:
         """Simulate power, size and coverage of every planned estimator at every design point."""
         loaded = load_checked(scenario, output_format, treatment_probability)
@@ -87,4 +92,15 @@ def register(app: typer.Typer) -> None:
             simulate_power, loaded, units=units, treatment_probabilities=treatment_probability, graphs=graphs,
             assignments_per_graph=assignments, seed=seed, adaptive=adaptive,
         )
-        emit(simulate_with_progress(solve, known_total=True), output_format, table=render_table, csv_text=render_csv)
+        check_figures_dir(figures)
+        result = simulate_with_progress(solve, known_total=True)
+        write_figures(figures, lambda: _figures(result, loaded))
+        emit(result, output_format, table=render_table, csv_text=render_csv)
+
+
+def _figures(result: PowerResult, scenario: Scenario) -> dict[str, object]:
+    from designcalc.figures import power_table_figure
+
+    if not result.records:
+        return {}
+    return {"power_by_units": power_table_figure(result.records, target_power=scenario.design.target_power, title=f"{result.scenario_name}: power at the planned sizes")}

@@ -11,10 +11,12 @@ from rich.console import Console
 
 from designcalc.cli.output import (
     Assignments,
+    FiguresDir,
     OutputFormat,
     ScenarioFile,
     Seed,
     TreatmentProbabilities,
+    check_figures_dir,
     emit,
     flag_references,
     graphs_option,
@@ -29,6 +31,7 @@ from designcalc.cli.output import (
     records_csv,
     simulate_with_progress,
     span,
+    write_figures,
 )
 from designcalc.sample_size import SizeRecord, SizeResult, required_sample_size
 from designcalc.scenario import Scenario
@@ -114,6 +117,7 @@ def register(app: typer.Typer) -> None:
         precision: Annotated[float | None, typer.Option(help="Target half-width of the 95% Monte Carlo interval of n relative to n, in (0, 0.5]; overrides simulation.relative_precision.")] = None,
         max_graphs: Annotated[int | None, graphs_option("Most graphs at the verified size; overrides simulation.max_graphs.")] = None,
         output_format: OutputFormat = "table",
+        figures: FiguresDir = None,
     ) -> None:
         """Units needed for the target power, per treatment probability and planned test; no scaling law assumed."""
         loaded = load_checked(scenario, output_format, treatment_probability, precision=precision, max_graphs=max_graphs, graphs=graphs)
@@ -127,7 +131,19 @@ def register(app: typer.Typer) -> None:
         def table(res: SizeResult, console: Console) -> None:
             render_table(res, console, scenario=loaded, limit=limit, precision=requested, max_graphs=cap)
 
+        check_figures_dir(figures)
+        result = simulate_with_progress(solve, known_total=False)
+        write_figures(figures, lambda: _figures(result, loaded))
         emit(
-            simulate_with_progress(solve, known_total=False), output_format, table=table, csv_text=render_csv,
+            result, output_format, table=table, csv_text=render_csv,
             partial_message="interrupted: showing the treatment probabilities that finished",
         )
+
+
+def _figures(result: SizeResult, scenario: Scenario) -> dict[str, object]:
+    from designcalc.figures import power_curve_figure
+
+    curves = [r for r in result.records if r.points]
+    if not curves:
+        return {}
+    return {"power_curves": power_curve_figure(curves, target_power=scenario.design.target_power, title=f"{result.scenario_name}: power against sample size")}
