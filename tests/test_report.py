@@ -6,6 +6,7 @@ import csv
 import hashlib
 import html.parser
 import json
+import math
 import re
 import subprocess
 import sys
@@ -122,8 +123,18 @@ def _latex_rows(text: str) -> list[list[str]]:
     return [[c.strip() for c in re.split(r"(?<!\\)&", line.removesuffix(" \\\\"))] for line in body.strip().splitlines()]
 
 
+_UNLATEX = (
+    ("\\textasciicircum{}", "^"), ("\\textsuperscript{2}", "²"), ("$\\alpha$", "α"), ("$\\pm$", "±"), ("$\\times$", "×"),
+    ("$\\le$", "≤"), ("$\\ge$", "≥"), ("$<$", "<"), ("$>$", ">"), ("\\_", "_"), ("\\&", "&"), ("\\%", "%"), ("\\#", "#"),
+    ("\\{", "{"), ("\\}", "}"), ("\\$", "$"),
+)
+
+
 def _unlatex(cell: str) -> str:
-    return cell.replace("\\_", "_").replace("\\&", "&").replace("\\%", "%").replace("$\\alpha$", "α")
+    """Undo LaTeX escaping (a separate table from the renderer's, so an escaping slip shows)."""
+    for escaped, plain in _UNLATEX:
+        cell = cell.replace(escaped, plain)
+    return cell
 
 
 def test_every_format_shows_the_json_numbers(built, data):
@@ -140,7 +151,8 @@ def test_every_format_shows_the_json_numbers(built, data):
         assert page.tables[table_id][1:] == expected, table_id
         assert markdown[table["title"]] == expected, table_id
         latex = (out / "tables" / f"{table_id}.tex").read_text()
-        assert [[_unlatex(c) for c in row] for row in _latex_rows(latex)] == [[_unlatex(_latex_plain(c)) for c in row] for row in expected]
+        assert latex.isascii(), table_id  # pdflatex-safe
+        assert [[_unlatex(c) for c in row] for row in _latex_rows(latex)] == expected, table_id
         with open(out / "tables" / f"{table_id}.csv", newline="") as f:
             rows = list(csv.DictReader(f))
         assert len(rows) == len(table["rows"])
@@ -154,12 +166,6 @@ def test_every_format_shows_the_json_numbers(built, data):
                 else:
                     assert parsed[c["key"]] == str(value)
         assert json.loads((out / "tables" / f"{table_id}.json").read_text()) == table
-
-
-def _latex_plain(cell: str) -> str:
-    from designcalc.report.render import latex_escape
-
-    return latex_escape(cell)
 
 
 def test_power_table_equals_the_power_command_json(data):
@@ -186,7 +192,7 @@ def test_key_answers_are_the_solvers_answers(built, data):
         size = report.size.select(estimand=row["estimand"], estimator=row["estimator"], variance_estimator=row["variance_estimator"])[0]
         assert row["required_units"] == size.required_units and row["status"] == size.status
         for n in SMALL["units"]:
-            mde = report.mde.select(estimand=row["estimand"], estimator=row["estimator"], units=n)[0]
+            mde = report.mde.select(estimand=row["estimand"], estimator=row["estimator"], variance_estimator=row["variance_estimator"], units=n)[0]
             assert row[f"mde_at_{n}"] == (None if np.isnan(mde.mde) else mde.mde)
     direct = next(r for r in data["tables"]["key-answers"]["rows"] if r["estimand"] == "direct")
     assert direct["status"] == "reached" and 100 < direct["required_units"] < 1600
@@ -205,14 +211,22 @@ def test_holm_and_bonferroni_power_come_from_the_power_replicates(built):
     for cost in mt.costs:
         # Normal approximation, the formula of CHECKS.md §6 with alpha/3, quantiles from scipy.
         z = scipy.stats.norm.ppf
-        assert cost.sample_size_factor == pytest.approx(((z(1 - 0.05 / 6) + z(0.8)) / (z(0.975) + z(0.8))) ** 2, rel=1e-12)
-        assert cost.sample_size_factor == pytest.approx(1.3338, abs=1e-4)
+        assert cost.classical_factor == pytest.approx(((z(1 - 0.05 / 6) + z(0.8)) / (z(0.975) + z(0.8))) ** 2, rel=1e-12)
+        assert cost.classical_factor == pytest.approx(1.3338, abs=1e-4)
+        assert cost.mde_factor == pytest.approx(cost.classical_factor**0.5, rel=1e-12)
+        # With the SD falling as n^slope, the n that restores the power grows by mde_factor^(-1/slope)
+        # (solve effect / (c n^slope) = multiplier); slope -1/2 gives back the classical square.
+        if math.isfinite(cost.sample_size_factor):
+            assert cost.sample_size_factor == pytest.approx(cost.mde_factor ** (-1 / cost.sd_slope), rel=1e-12)
+            if cost.required_units is not None:
+                assert cost.adjusted_units == math.ceil(cost.required_units * cost.sample_size_factor)
+    assert any(math.isfinite(c.sample_size_factor) and c.adjusted_units for c in mt.costs)
 
 
 def test_provenance_and_scenario_copy(built, data):
     """The folder holds the scenario byte for byte, its SHA-256 (hashlib) in the provenance, and the fields a reviewer needs."""
     _, out = built
-    copy = (out / "scenario.toml").read_bytes()
+    copy = (out / "scenario" / DEMO.name).read_bytes()
     assert copy == DEMO.read_bytes()
     prov = json.loads((out / "provenance.json").read_text())
     assert prov == data["provenance"]
@@ -221,7 +235,7 @@ def test_provenance_and_scenario_copy(built, data):
         assert field in prov, field
     assert prov["replicates_per_design_point"] == 30
     text = (out / "report.md").read_text()
-    assert "designcalc report scenario.toml --out REPORT_DIR" in text
+    assert f"designcalc report scenario/{DEMO.name} --out REPORT_DIR" in text
     for caution in data["cautions"]:
         assert caution in text and caution in (out / "report.html").read_text()
 
@@ -249,11 +263,13 @@ def test_latex_tables_are_booktabs(built):
         assert all(len(row) == len(spec) for row in _latex_rows(text))
 
 
-def test_rebuilt_report_is_byte_identical_apart_from_the_time(built, tmp_path):
-    """The same scenario and seed, rebuilt through the command line, give identical files except the time stamp."""
+def test_reproduce_line_rebuilds_a_byte_identical_report(built, data, tmp_path):
+    """The report's own "how to reproduce" line, run in its folder, gives identical files except the time stamp."""
     _, first = built
     second = tmp_path / "again"
-    run = designcalc("report", str(DEMO), "--out", str(second), *CLI_SMALL, "--precision", "0.3", "--max-units", "1600")
+    command = data["reproduce"].replace("REPORT_DIR", str(second)).split()
+    assert command[:2] == ["designcalc", "report"]
+    run = subprocess.run([sys.executable, "-m", "designcalc", *command[1:]], capture_output=True, text=True, timeout=600, check=False, cwd=first)
     assert run.returncode == 0, run.stderr
     stamp_1 = json.loads((first / "provenance.json").read_text())["utc_time"]
     stamp_2 = json.loads((second / "provenance.json").read_text())["utc_time"]
@@ -264,8 +280,35 @@ def test_rebuilt_report_is_byte_identical_apart_from_the_time(built, tmp_path):
         a, b = (first / rel).read_bytes(), (second / rel).read_bytes()
         if rel.suffix in (".html", ".md", ".json"):
             a, b = a.replace(stamp_1.encode(), b"TIME"), b.replace(stamp_2.encode(), b"TIME")
-        # The reproduce line differs only by the settings, stated the same way in both builds.
         assert a == b, rel
+
+
+def test_family_power_applies_holm_per_replicate_as_statsmodels_does():
+    """Bonferroni and Holm rates equal statsmodels' multipletests applied replicate by replicate, clustered by graph."""
+    from statsmodels.stats.multitest import multipletests
+
+    from designcalc.engine import DesignPoint
+    from designcalc.power import clustered_mean_se
+    from designcalc.report.collect import _Capture, _family_power
+
+    rng = np.random.default_rng(7)
+    keys = (("direct", "hajek", "neyman"), ("spillover", "pc_balancing", "plug_in"), ("total", "hajek+pc_balancing", "linearised"))
+    point = DesignPoint(100, 0.5)
+    p = np.where(rng.random((6, 5, 3)) < 0.5, rng.random((6, 5, 3)) * 0.05, rng.random((6, 5, 3)))
+    p[0, 0, 1] = np.nan  # an undefined test in one replicate
+    capture = _Capture.__new__(_Capture)
+    capture.p_values, capture.single, capture.keys = {point: p}, {point: np.nan_to_num(p, nan=1.0) <= 0.05}, {point: keys}
+    rows = _family_power(capture, 0.05)
+    for method, field in (("holm", "holm_power"), ("bonferroni", "bonferroni_power")):
+        decisions = np.zeros_like(p, dtype=bool)
+        for g in range(6):
+            for b in range(5):
+                ok = ~np.isnan(p[g, b])
+                # statsmodels on the defined p-values, with the undefined one counted as p = 1 (never rejected)
+                decisions[g, b] = multipletests(np.where(ok, p[g, b], 1.0), alpha=0.05, method=method)[0] & ok
+        for j, row in enumerate(rows):
+            values = np.where(np.isnan(p[..., j]), np.nan, decisions[..., j].astype(float))
+            assert getattr(row, field) == pytest.approx(clustered_mean_se(values)[0], abs=1e-12)
 
 
 def test_interrupted_write_leaves_no_folder_and_keeps_an_earlier_one(built, tmp_path):
@@ -312,6 +355,7 @@ def test_refuses_to_overwrite_a_folder_of_other_files(built, tmp_path):
     mine = tmp_path / "notes"
     mine.mkdir()
     (mine / "draft.txt").write_text("keep me")
+    (mine / "report.json").write_text('{"mine": true}')  # a file of that name does not make it a report
     with pytest.raises(DesignCalcError, match=r"--out .*not an earlier designcalc report"):
         write_report(report, mine)
     assert (mine / "draft.txt").read_text() == "keep me"
@@ -333,3 +377,27 @@ def test_bad_options_are_named(args, match, tmp_path):
     assert run.returncode == 2, run.stderr
     assert re.search(match, run.stderr) and "Traceback" not in run.stderr
     assert not (tmp_path / "r").exists()
+
+
+def test_interrupt_between_the_two_renames_puts_the_old_report_back(built, tmp_path, monkeypatch):
+    """Ctrl-C after the old report is moved aside but before the new one is in: the old report is restored whole."""
+    import designcalc.report.files as files
+
+    report, _ = built
+    target = write_report(report, tmp_path / "appendix")
+    before = {p.relative_to(target): p.read_bytes() for p in target.rglob("*") if p.is_file()}
+    real_rename = files.os.rename
+    calls = []
+
+    def rename_then_interrupt(src, dst):
+        calls.append(dst)
+        if len(calls) == 2:  # the staging folder's rename into place
+            raise KeyboardInterrupt
+        real_rename(src, dst)
+
+    monkeypatch.setattr(files.os, "rename", rename_then_interrupt)
+    with pytest.raises(KeyboardInterrupt):
+        write_report(report, target)
+    monkeypatch.setattr(files.os, "rename", real_rename)
+    assert {p.relative_to(target): p.read_bytes() for p in target.rglob("*") if p.is_file()} == before
+    assert [p.name for p in tmp_path.iterdir()] == ["appendix"]

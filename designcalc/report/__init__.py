@@ -11,7 +11,7 @@ Examples
 ...                  assignments_per_graph=4, precision=0.5, max_units=800))
 >>> out = write_report(r, Path(tempfile.mkdtemp()) / "appendix")
 >>> sorted(p.name for p in out.iterdir())
-['figures', 'provenance.json', 'report.html', 'report.json', 'report.md', 'scenario.toml', 'tables']
+['figures', 'provenance.json', 'report.html', 'report.json', 'report.md', 'scenario', 'tables']
 """
 
 from designcalc.report.collect import Report, ReportSettings, build_report

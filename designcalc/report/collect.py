@@ -43,7 +43,7 @@ from designcalc.engine import (
 )
 from designcalc.errors import DesignCalcError
 from designcalc.figures import SamplingSample
-from designcalc.inference import reference_distribution
+from designcalc.inference import critical_value, reference_distribution
 from designcalc.mde import MdeResult, minimum_detectable_effects
 from designcalc.multiplicity import (
     bonferroni_alpha,
@@ -59,6 +59,7 @@ from designcalc.power import (
     _override,
     clustered_mean_se,
     provenance,
+    reject,
     simulate_power,
 )
 from designcalc.sample_size import SizeResult, required_sample_size
@@ -105,6 +106,16 @@ class ReportSettings:
                 raise DesignCalcError(f"treatment probabilities must be in (0, 1); got {p}")
         if self.search_graphs and self.search_graphs < 2:
             raise DesignCalcError(f"`search_graphs` must be at least 2; got {self.search_graphs}")
+        if self.tests and self.all_tests:
+            raise DesignCalcError("give key-answer tests (--test) or --all-tests, not both")
+        checks = (
+            ("units", min(self.units, default=4), 4), ("graphs", self.graphs or 2, 2),
+            ("assignments_per_graph", self.assignments_per_graph or 1, 1), ("compare_units", self.compare_units or 4, 4),
+            ("max_units", self.max_units or 8, 8), ("batch_size", self.batch_size, 1), ("seed", self.seed or 0, 0),
+        )
+        for name, value, low in checks:
+            if value < low:
+                raise DesignCalcError(f"`{name}` must be at least {low}; got {value}")
 
     def to_dict(self) -> dict[str, object]:
         return {
@@ -117,7 +128,16 @@ class ReportSettings:
 
 @dataclass(frozen=True)
 class CostRow:
-    """What an adjusted level costs one hypothesis's test (normal approximation, METHODS-free: see multiplicity)."""
+    """What testing at the adjusted level costs one hypothesis's test.
+
+    ``mde_factor``: the MDE at a fixed size grows by the ratio of the
+    normal multipliers (``multiplicity.mde_inflation``).  ``classical_factor``:
+    the sample-size factor if SE fell as n^-1/2 (its square).  The tool does
+    not assume that for network estimators, so ``sample_size_factor`` uses
+    the SD's log-log slope ``sd_slope`` measured by the size search
+    (n grows by ``mde_factor ** (-1 / sd_slope)``; nan when the SD hardly
+    shrinks with n), and ``adjusted_units`` applies it to a reached size.
+    """
 
     estimand: str
     estimator: str
@@ -125,7 +145,10 @@ class CostRow:
     treatment_probability: float
     per_test_alpha: float
     mde_factor: float
+    classical_factor: float
+    sd_slope: float
     sample_size_factor: float
+    status: str
     required_units: int | None
     adjusted_units: int | None
 
@@ -207,18 +230,31 @@ def _chosen_tests(scenario: Scenario, settings: ReportSettings) -> tuple[Key, ..
     if settings.all_tests:
         return tuple(keys)
     if settings.tests:
-        chosen = [parse_test_spec(t, option="--test").resolve(scenario, units) for t in settings.tests]
+        chosen = []
+        for text in settings.tests:
+            try:
+                chosen.append(parse_test_spec(text, option="--test").resolve(scenario, units))
+            except DesignCalcError as exc:
+                message = str(exc)
+                raise DesignCalcError(message if message.startswith("--test") else f"--test: {message}") from None
         return tuple(dict.fromkeys(chosen))
     firsts = [next(k for k in keys if k[0] == e) for e in ESTIMANDS if any(k[0] == e for k in keys)]
     return tuple(firsts)
 
 
-def _family(tests: Sequence[Key]) -> tuple[Key, ...]:
-    """One hypothesis per estimand: the first chosen test of each (several tests of one estimand are one hypothesis)."""
-    seen: dict[str, Key] = {}
-    for k in tests:
-        seen.setdefault(k[0], k)
-    return tuple(seen[e] for e in ESTIMANDS if e in seen)
+def _family(scenario: Scenario, tests: Sequence[Key]) -> tuple[Key, ...]:
+    """One hypothesis per planned estimand, tested by its first key-answer test, else by its first planned test.
+
+    Several tests of one estimand are alternative analyses of one hypothesis,
+    not several hypotheses; every estimand the plan tests counts.
+    """
+    planned = planned_keys(scenario, scenario.population.units[0])
+    family = []
+    for e in ESTIMANDS:
+        chosen = [k for k in tests if k[0] == e] or [k for k in planned if k[0] == e]
+        if chosen:
+            family.append(chosen[0])
+    return tuple(family)
 
 
 class _Capture:
@@ -229,23 +265,34 @@ class _Capture:
         self.family = tuple(family)
         self.tests = tuple(tests)
         self.sample_point = sample_point
-        self.p_values: dict[DesignPoint, np.ndarray] = {}  # (graphs, assignments, hypotheses)
+        self.p_values: dict[DesignPoint, np.ndarray] = {}  # (graphs, assignments, hypotheses); nan where undefined
+        self.single: dict[DesignPoint, np.ndarray] = {}  # the unadjusted test's decisions, same shape
+        self.keys: dict[DesignPoint, tuple[Key, ...]] = {}
         self.samples: list[SamplingSample] = []
 
     def __call__(self, point: DesignPoint, draws: Sequence[GraphDraws]) -> None:
         design = self.scenario.design
-        columns = []
-        for key in self.family:
+        available = draws[0].estimates
+        family = [k for k in self.family if k in available]  # a test dropped at this size (two_hop) is left out
+        p_columns, single_columns = [], []
+        for key in family:
             est = np.stack([d.estimates[key] for d in draws])
             se = np.stack([d.standard_errors[key] for d in draws])
             reference = reference_distribution(design.reference_distribution, key[0], key[1], point.units, self.scenario.n_covariates)
+            critical = critical_value(design.significance_level, design.alternative, reference.df)
+            # The power table's own rule and mask (power.summarise_design_point), so the unadjusted
+            # rate is that table's power exactly; p-values only order the tests for Holm.
+            ok = np.isfinite(est) & np.isfinite(se)
             with np.errstate(divide="ignore", invalid="ignore"):
-                ok = np.isfinite(est) & np.isfinite(se) & (se > 0)
-                columns.append(np.where(ok, p_values(est / np.where(ok, se, 1.0), design.alternative, reference.df), np.nan))
-        if columns:
-            self.p_values[point] = np.stack(columns, axis=-1)
+                t = est / se
+                single_columns.append(np.where(ok, reject(t, critical, design.alternative), False))
+                p_columns.append(np.where(ok, p_values(np.nan_to_num(t, nan=0.0), design.alternative, reference.df), np.nan))
+        if family:
+            self.keys[point] = tuple(family)
+            self.p_values[point] = np.stack(p_columns, axis=-1)
+            self.single[point] = np.stack(single_columns, axis=-1)
         if point == self.sample_point:
-            for key in self.tests:
+            for key in (k for k in self.tests if k in available):
                 estimates = np.concatenate([d.estimates[key] for d in draws])
                 nulls = np.concatenate([d.null_estimates[key] for d in draws])
                 truth = float(np.mean([d.estimands.value(key[0]) for d in draws]))
@@ -259,11 +306,11 @@ def _family_power(capture: _Capture, alpha: float) -> list[FamilyPowerRow]:
         flat = p.reshape(-1, m)
         valid = ~np.isnan(flat)
         decisions = {
-            "single": np.where(valid, flat <= alpha, False),
+            "single": capture.single[point].reshape(-1, m),
             "bonferroni": bonferroni_reject(flat, alpha),
             "holm": holm_reject(flat, alpha),
         }
-        for j, key in enumerate(capture.family):
+        for j, key in enumerate(capture.keys[point]):
             # Clustered by graph, as every Monte Carlo error of the tool; replicates whose test is
             # undefined are left out of all three rates alike.
             rates = {}
@@ -287,15 +334,20 @@ def _costs(scenario: Scenario, family: Sequence[Key], size: SizeResult) -> list[
     rows = []
     for key in family:
         for pi in design.treatment_probabilities:
-            found = [r for r in size.select(estimand=key[0], estimator=key[1], variance_estimator=key[2], treatment_probability=pi)]
-            required = found[0].required_units if found and found[0].status.startswith("reached") else None
-            rows.append(
-                CostRow(
-                    *key, pi, adjusted, mde_factor, n_factor, required,
-                    math.ceil(required * n_factor) if required is not None else None,
-                )
-            )
+            found = size.select(estimand=key[0], estimator=key[1], variance_estimator=key[2], treatment_probability=pi)
+            record = found[0] if found else None
+            slope = record.sd_slope if record is not None else math.nan
+            # Below this the SD barely shrinks with n and the power law would extrapolate wildly.
+            factor = mde_factor ** (-1.0 / slope) if math.isfinite(slope) and slope < -_MIN_SLOPE else math.nan
+            # Only an exact answer is scaled: "reached at the smallest size" is an upper bound.
+            required = record.required_units if record is not None and record.status == "reached" else None
+            adjusted_units = math.ceil(required * factor) if required is not None and math.isfinite(factor) else None
+            status = record.status if record is not None else "not computed (not a key-answer test)"
+            rows.append(CostRow(*key, pi, adjusted, mde_factor, n_factor, slope, factor, status, required, adjusted_units))
     return rows
+
+
+_MIN_SLOPE = 0.1
 
 
 def build_report(
@@ -342,7 +394,7 @@ def build_report(
     )
     check = check_scenario(scenario)
     tests = _chosen_tests(scenario, settings)
-    family = _family(tests)
+    family = _family(scenario, tests)
     solving = scenario if settings.all_tests else restrict_tests(scenario, tests)
     units = scenario.population.units
     sample_point = DesignPoint(units[-1], scenario.design.treatment_probabilities[0])

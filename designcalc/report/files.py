@@ -12,13 +12,14 @@ Layout::
     DIR/report.md            Markdown, figures linked from figures/
     DIR/report.json          every table's raw numbers, the solvers' full results, provenance
     DIR/provenance.json      tool and library versions, scenario SHA-256, seed, stream layout, replicates, time
-    DIR/scenario.toml        the scenario file, byte for byte
+    DIR/scenario/NAME.toml   the scenario as read, under its own file name (so the reproduce line gives the same name)
     DIR/tables/ID.csv|.json|.tex   each table (LaTeX: booktabs tabular)
     DIR/figures/NAME.png|.svg
 """
 
 from __future__ import annotations
 
+import json
 import os
 import shutil
 import tempfile
@@ -49,6 +50,13 @@ from designcalc.report.tables import report_tables
 __all__ = ["MARKER_FILE", "check_target", "report_data", "report_figures", "write_report"]
 
 MARKER_FILE = "report.json"
+REPORT_FORMAT = "designcalc report"
+
+
+def scenario_copy_path(report: Report) -> str:
+    """Where the scenario copy goes in the folder: ``scenario/`` under the file's own name."""
+    name = Path(report.scenario.source).name
+    return f"scenario/{name if name.endswith('.toml') and name != '<scenario>' else 'scenario.toml'}"
 
 
 def report_figures(report: Report) -> dict[str, object]:
@@ -84,7 +92,7 @@ def report_data(report: Report, tables: list, figure_stems: list[str]) -> dict[s
         return out
 
     return {
-        "format": "designcalc report",
+        "format": REPORT_FORMAT,
         "format_version": 1,
         "scenario": report.scenario.name,
         "provenance": report.provenance,
@@ -103,18 +111,33 @@ def report_data(report: Report, tables: list, figure_stems: list[str]) -> dict[s
     }
 
 
+def _is_report(folder: Path) -> bool:
+    """An earlier designcalc report: its report.json parses and says so (a file name alone is not enough)."""
+    try:
+        data = json.loads((folder / MARKER_FILE).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return False
+    return isinstance(data, dict) and data.get("format") == REPORT_FORMAT
+
+
 def check_target(out: Path) -> None:
-    """Refuse a target that is a file, a folder of the user's own files, or under a missing parent (before any work)."""
+    """Refuse a target that is a file, a folder of the user's own files, or under a missing or read-only parent (before any work)."""
     out = Path(out).absolute()
     if out.exists() and not out.is_dir():
         raise DesignCalcError(f"--out {out}: a file of that name exists; give a folder name")
-    if out.is_dir() and any(out.iterdir()) and not (out / MARKER_FILE).is_file():
-        raise DesignCalcError(
-            f"--out {out}: the folder exists and is not an earlier designcalc report (no {MARKER_FILE}); "
-            "give a new or empty folder so that nothing of yours is overwritten"
-        )
     if not out.parent.is_dir():
         raise DesignCalcError(f"--out {out}: the parent folder {out.parent} does not exist")
+    if not os.access(out.parent, os.W_OK | os.X_OK):
+        raise DesignCalcError(f"--out {out}: cannot write in the parent folder {out.parent} (permission denied)")
+    try:
+        foreign = out.is_dir() and any(out.iterdir()) and not _is_report(out)
+    except OSError as exc:
+        raise DesignCalcError(f"--out {out}: cannot read the folder ({exc.strerror})") from None
+    if foreign:
+        raise DesignCalcError(
+            f"--out {out}: the folder exists and is not an earlier designcalc report (no designcalc {MARKER_FILE}); "
+            "give a new or empty folder so that nothing of yours is overwritten"
+        )
 
 
 def write_report(report: Report, out: Path, *, on_file: Callable[[Path], None] | None = None) -> Path:
@@ -125,11 +148,17 @@ def write_report(report: Report, out: Path, *, on_file: Callable[[Path], None] |
     """
     out = Path(out).absolute()
     check_target(out)
-    staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    try:
+        staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
+    except OSError as exc:
+        raise DesignCalcError(f"--out {out}: cannot create a folder in {out.parent} ({exc.strerror})") from None
     os.chmod(staging, 0o777 & ~_umask())  # mkdtemp makes 0700; the report folder gets the usual permissions
     try:
         _write_all(report, staging, on_file or (lambda path: None))
         _swap_into_place(staging, out)
+    except OSError as exc:
+        shutil.rmtree(staging, ignore_errors=True)
+        raise DesignCalcError(f"--out {out}: could not write the report ({exc}); nothing was changed") from None
     except BaseException:
         shutil.rmtree(staging, ignore_errors=True)
         raise
@@ -150,13 +179,20 @@ def _swap_into_place(staging: Path, out: Path) -> None:
     # `out` is either the complete old report or the complete new one.
     old = Path(tempfile.mkdtemp(prefix=f".{out.name}.old-", dir=out.parent))
     os.rmdir(old)
-    os.rename(out, old)
     try:
+        os.rename(out, old)
         os.rename(staging, out)
     except BaseException:
-        os.rename(old, out)
+        # Interrupted between the two renames: put the old report back.
+        if not out.exists() and old.exists():
+            os.rename(old, out)
         raise
-    shutil.rmtree(old, ignore_errors=True)
+    try:
+        shutil.rmtree(old, ignore_errors=True)
+    except KeyboardInterrupt:
+        # The new report is complete; finish removing the old one before passing the interrupt on.
+        shutil.rmtree(old, ignore_errors=True)
+        raise
 
 
 def _write_all(report: Report, folder: Path, on_file: Callable[[Path], None]) -> None:
@@ -183,11 +219,9 @@ def _write_all(report: Report, folder: Path, on_file: Callable[[Path], None]) ->
         write(f"tables/{t.id}.csv", render_csv(t))
         write(f"tables/{t.id}.tex", render_latex(t))
         write(f"tables/{t.id}.json", render_json(t.to_dict()))
-    scenario_bytes = report.scenario.text.encode("utf-8") if report.scenario.text else b""
-    source = Path(report.scenario.source)
-    if source.is_file():
-        scenario_bytes = source.read_bytes()  # byte for byte, comments included
-    write("scenario.toml", scenario_bytes)
+    # The text the scenario was parsed from (its SHA-256 is the provenance's), never a re-read of a
+    # file that may have changed or be another file of the same name in the current folder.
+    write(scenario_copy_path(report), report.scenario.text.encode("utf-8"))
     write("provenance.json", render_json(report.provenance))
     write("report.md", render_markdown(report, tables, stems))
     write("report.html", render_html(report, tables, svgs))

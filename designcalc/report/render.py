@@ -12,6 +12,7 @@ import html
 import io
 import json
 import math
+import re
 from collections.abc import Mapping, Sequence
 
 from designcalc.power import CAUTIONS
@@ -87,16 +88,18 @@ def _tests_in_words(report: Report) -> str:
 def reproduce_command(report: Report, out: str = "REPORT_DIR") -> str:
     """The command line that rebuilds this report from the copied scenario."""
     st = report.settings
-    parts = ["designcalc", "report", "scenario.toml", "--out", out]
+    from designcalc.report.files import scenario_copy_path
+
+    parts = ["designcalc", "report", scenario_copy_path(report), "--out", out]
     for n in st.units:
         parts += ["--units", str(n)]
     for p in st.treatment_probabilities:
-        parts += ["--treatment-probability", f"{p:g}"]
+        parts += ["--treatment-probability", repr(p)]
     for flag, value in (("--graphs", st.graphs), ("--assignments", st.assignments_per_graph), ("--seed", st.seed)):
         if value is not None:
             parts += [flag, str(value)]
     if st.precision != 0.1:
-        parts += ["--precision", f"{st.precision:g}"]
+        parts += ["--precision", repr(st.precision)]
     if st.search_graphs:
         parts += ["--search-graphs", str(st.search_graphs)]
     if st.max_units:
@@ -108,6 +111,12 @@ def reproduce_command(report: Report, out: str = "REPORT_DIR") -> str:
     if st.all_tests:
         parts.append("--all-tests")
     return " ".join(parts)
+
+
+def _copy(report: Report) -> str:
+    from designcalc.report.files import scenario_copy_path
+
+    return scenario_copy_path(report)
 
 
 def _provenance_rows(report: Report) -> list[tuple[str, str]]:
@@ -160,7 +169,7 @@ def render_html(report: Report, tables: Sequence[Table], figures_svg: Mapping[st
         f"<title>{e(s.name)}: power analysis appendix</title>", f"<style>{_STYLE}</style></head><body>",
         f"<h1>{e(s.name)}</h1>", f"<p>{e(s.description)}</p>",
         f'<p class="caption">Power analysis appendix made by designcalc {e(str(report.provenance["tool_version"]))} on '
-        f'{e(report.generated)} from <code>scenario.toml</code> (SHA-256 <code>{e(s.sha256)}</code>).</p>',
+        f'{e(report.generated)} from <code>{e(_copy(report))}</code> (SHA-256 <code>{e(s.sha256)}</code>).</p>',
         '<div class="cautions"><strong>Read first.</strong><ul>' + "".join(f"<li>{e(c)}</li>" for c in CAUTIONS) + "</ul></div>",
         '<h2 id="design">1. The design in plain words</h2><dl class="design">',
         *(f"<dt>{e(k)}</dt><dd>{e(v)}</dd>" for k, v in design_in_words(report)),
@@ -200,12 +209,19 @@ def render_html(report: Report, tables: Sequence[Table], figures_svg: Mapping[st
     return "\n".join(parts) + "\n"
 
 
+def _prefix_ids(svg: str, prefix: str) -> str:
+    """Give an inline SVG's ids (and references to them) a prefix, so several figures on one page never share an id."""
+    svg = re.sub(r'\bid="([^"]+)"', lambda m: f'id="{prefix}-{m.group(1)}"', svg)
+    svg = re.sub(r"url\(#([^)]+)\)", lambda m: f"url(#{prefix}-{m.group(1)})", svg)
+    return re.sub(r'href="#([^"]+)"', lambda m: f'href="#{prefix}-{m.group(1)}"', svg)
+
+
 def _html_figure(stem: str, figures_svg: Mapping[str, str]) -> str:
     if stem not in figures_svg:
         return ""
     title, caption = next((t, c) for s, t, c in FIGURES if s == stem)
     return (
-        f'<figure id="figure-{stem}">{figures_svg[stem]}<figcaption><strong>{html.escape(title)}.</strong> '
+        f'<figure id="figure-{stem}">{_prefix_ids(figures_svg[stem], stem)}<figcaption><strong>{html.escape(title)}.</strong> '
         f"{html.escape(caption)} (figures/{stem}.png, figures/{stem}.svg)</figcaption></figure>"
     )
 
@@ -231,7 +247,7 @@ def render_markdown(report: Report, tables: Sequence[Table], figure_stems: Seque
     out = [
         f"# {s.name}", "", s.description, "",
         f"Power analysis appendix made by designcalc {report.provenance['tool_version']} on {report.generated} from "
-        f"`scenario.toml` (SHA-256 `{s.sha256}`).", "",
+        f"`{_copy(report)}` (SHA-256 `{s.sha256}`).", "",
         *(f"> **Caution.** {c}" for c in CAUTIONS), "",
         "## 1. The design in plain words", "", *(f"- **{k}.** {v}" for k, v in design_in_words(report)), "",
         "## 2. Key answers", "", _md_table(by_id["key-answers"]),
@@ -269,7 +285,8 @@ def render_markdown(report: Report, tables: Sequence[Table], figure_stems: Seque
 _LATEX_SPECIAL = {
     "\\": r"\textbackslash{}", "&": r"\&", "%": r"\%", "$": r"\$", "#": r"\#", "_": r"\_", "{": r"\{", "}": r"\}",
     "~": r"\textasciitilde{}", "^": r"\textasciicircum{}", "α": r"$\alpha$", "±": r"$\pm$", "√": r"$\surd$", "∝": r"$\propto$",
-    "²": r"\textsuperscript{2}", "−": "-",
+    "²": r"\textsuperscript{2}", "−": "-", "≤": r"$\le$", "≥": r"$\ge$", "×": r"$\times$", "∞": r"$\infty$",
+    "–": "--", "—": "---", "§": r"\S{}", "<": r"$<$", ">": r"$>$",
 }
 
 
@@ -279,7 +296,15 @@ def latex_escape(text: str) -> str:
     >>> latex_escape("hajek_x & 5%")
     'hajek\\_x \\& 5\\%'
     """
-    return "".join(_LATEX_SPECIAL.get(ch, ch) for ch in text)
+    return "".join(_LATEX_SPECIAL.get(ch, ch if ch.isascii() else _ascii_fallback(ch)) for ch in text)
+
+
+def _ascii_fallback(ch: str) -> str:
+    """Any other non-ASCII character: its ASCII decomposition (é -> e), else '?', so pdflatex never fails on a table."""
+    import unicodedata
+
+    plain = unicodedata.normalize("NFKD", ch).encode("ascii", "ignore").decode()
+    return plain or "?"
 
 
 def render_latex(table: Table) -> str:

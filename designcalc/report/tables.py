@@ -249,13 +249,16 @@ def multiple_testing_tables(report: Report) -> list[Table]:
         "multiple-testing-cost", "Multiple testing: adjusted levels and their cost",
         f"{len(mt.hypotheses)} hypotheses at family-wise α = {mt.alpha:g}: Bonferroni tests each at α/m = {mt.bonferroni_alpha:.4g}; "
         "Holm's smallest threshold is the same, so planning each test at α/m guarantees its power under Holm too. "
-        "Factors by the normal approximation (SE ∝ 1/√n).",
+        "MDE factor: the normal multipliers' ratio at a fixed size. Classical n factor: its square, if SE fell as 1/√n. "
+        "The n factor used here follows the SD's log-log slope in n measured by the size search (n grows by "
+        "MDE factor^(-1/slope)); it is left out where the SD barely shrinks with n.",
         (Column("estimand", "estimand"), *_TEST_COLUMNS, Column("treatment probability", "treatment_probability", "fixed", 2),
          Column("per-test α", "per_test_alpha", "sig", 4), Column("MDE factor", "mde_factor", "fixed", 4),
-         Column("sample-size factor", "sample_size_factor", "fixed", 4), Column("required units", "required_units", "int"),
-         Column("units at adjusted α", "adjusted_units", "int")),
+         Column("classical n factor", "classical_factor", "fixed", 4), Column("SD slope", "sd_slope", "fixed", 2),
+         Column("n factor", "sample_size_factor", "fixed", 3), Column("required units", "required_units", "int"),
+         Column("units at adjusted α", "adjusted_units", "int"), Column("status", "status")),
         tuple((c.estimand, c.estimator, c.variance_estimator, c.treatment_probability, c.per_test_alpha, c.mde_factor,
-               c.sample_size_factor, c.required_units, c.adjusted_units) for c in mt.costs),
+               c.classical_factor, c.sd_slope, c.sample_size_factor, c.required_units, c.adjusted_units, c.status) for c in mt.costs),
     )
     power = Table(
         "multiple-testing-power", "Multiple testing: power of each hypothesis under Bonferroni and Holm",
