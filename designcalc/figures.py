@@ -996,16 +996,28 @@ def _log_units_axis(ax: Axes) -> None:
     """A log-scale axis of unit counts labelled 100, 200, 500, 1,000, ... (no 2 x 10^2 clutter)."""
     ax.set_xscale("log")
     low, high = ax.get_xlim()
-    # 1-2-5 ticks inside the range; a narrow range (200 to 400 units) with fewer than two of them
-    # gets ticks at the ends and the geometric middle, rounded, instead of matplotlib's crowded fallback.
-    ticks = [m * 10.0**k for k in range(int(math.floor(math.log10(low))), int(math.ceil(math.log10(high))) + 1)
-             for m in (1.0, 2.0, 5.0) if low <= m * 10.0**k <= high]
+    # 1-2-5 ticks inside the range; a narrow range (300 to 600 units) with fewer than two of them
+    # takes every whole multiple of the power of ten (300, 400, 500, 600) instead.
+    decades = range(int(math.floor(math.log10(low))), int(math.ceil(math.log10(high))) + 1)
+    ticks: list[float] = []
+    for mantissas in ((1.0, 2.0, 5.0), (1.0, 1.5, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0, 8.0, 9.0)):
+        ticks = [m * 10.0**k for k in decades for m in mantissas if low <= m * 10.0**k <= high]
+        if len(ticks) >= 2:
+            break
     if len(ticks) < 2:
-        data = sorted({float(x) for line in ax.get_lines() for x in np.atleast_1d(line.get_xdata()) if low <= float(x) <= high})
-        ticks = data if 2 <= len(data) <= 6 else sorted({float(f"{t:.2g}") for t in (low * 1.05, math.sqrt(low * high), high / 1.05)})
+        ticks = sorted({float(f"{t:.2g}") for t in (low * 1.05, math.sqrt(low * high), high / 1.05)})
     ax.set_xticks(ticks)
-    ax.xaxis.set_major_formatter(FuncFormatter(lambda x, _: f"{x:,.0f}"))
+    ax.xaxis.set_major_formatter(FuncFormatter(_units_label))
     ax.xaxis.set_minor_formatter(NullFormatter())
+
+
+def _units_label(x: float, _: object = None) -> str:
+    """Unit counts as 500, 2,000, 10k, 200k, 1M: short enough not to run into each other on a small panel."""
+    if x >= 1e6:
+        return f"{x / 1e6:g}M"
+    if x >= 1e4:
+        return f"{x / 1e3:g}k"
+    return f"{x:,.0f}"
 
 
 def _say_empty(ax: Axes, message: str) -> None:

@@ -216,8 +216,11 @@ def test_holm_and_bonferroni_power_come_from_the_power_replicates(built):
         assert cost.mde_factor == pytest.approx(cost.classical_factor**0.5, rel=1e-12)
         # With the SD falling as n^slope, the n that restores the power grows by mde_factor^(-1/slope)
         # (solve effect / (c n^slope) = multiplier); slope -1/2 gives back the classical square.
-        if math.isfinite(cost.sample_size_factor):
+        if cost.estimand == "direct":
+            assert cost.sample_size_factor == cost.classical_factor
+        elif math.isfinite(cost.sample_size_factor):
             assert cost.sample_size_factor == pytest.approx(cost.mde_factor ** (-1 / cost.sd_slope), rel=1e-12)
+        if math.isfinite(cost.sample_size_factor):
             if cost.required_units is not None:
                 assert cost.adjusted_units == math.ceil(cost.required_units * cost.sample_size_factor)
     assert any(math.isfinite(c.sample_size_factor) and c.adjusted_units for c in mt.costs)
@@ -401,3 +404,26 @@ def test_interrupt_between_the_two_renames_puts_the_old_report_back(built, tmp_p
     monkeypatch.setattr(files.os, "rename", real_rename)
     assert {p.relative_to(target): p.read_bytes() for p in target.rglob("*") if p.is_file()} == before
     assert [p.name for p in tmp_path.iterdir()] == ["appendix"]
+
+
+@pytest.mark.parametrize(
+    ("settings", "match"),
+    [
+        (dict(precision=0.0), r"`precision` must be in \(0, 0.5\]"),
+        (dict(treatment_probabilities=(1.0,)), r"treatment probabilities must be in \(0, 1\); got 1.0"),
+        (dict(units=(2,)), r"`units` must be at least 4; got 2"),
+        (dict(graphs=1), r"`graphs` must be at least 2; got 1"),
+        (dict(search_graphs=1), r"`search_graphs` must be at least 2"),
+        (dict(tests=("direct",), all_tests=True), r"not both"),
+    ],
+)
+def test_report_settings_reject_impossible_values(settings, match):
+    """ReportSettings names the setting it rejects, with the allowed range and the value received."""
+    with pytest.raises(DesignCalcError, match=match):
+        ReportSettings(**settings)
+
+
+def test_an_unplanned_test_is_named_with_the_option():
+    """--test naming a test the scenario does not plan lists the planned ones and names --test."""
+    with pytest.raises(DesignCalcError, match=r"^--test: no planned test matches 'direct:foo'; planned tests are: direct:hajek:neyman"):
+        build_report(load_scenario(DEMO), ReportSettings(tests=("direct:foo",), **{k: v for k, v in SMALL.items()}))

@@ -133,10 +133,12 @@ class CostRow:
     ``mde_factor``: the MDE at a fixed size grows by the ratio of the
     normal multipliers (``multiplicity.mde_inflation``).  ``classical_factor``:
     the sample-size factor if SE fell as n^-1/2 (its square).  The tool does
-    not assume that for network estimators, so ``sample_size_factor`` uses
-    the SD's log-log slope ``sd_slope`` measured by the size search
-    (n grows by ``mde_factor ** (-1 / sd_slope)``; nan when the SD hardly
-    shrinks with n), and ``adjusted_units`` applies it to a reached size.
+    not assume that for network estimators, so for spillover and total tests
+    ``sample_size_factor`` uses the SD's log-log slope ``sd_slope`` measured
+    by the size search (n grows by ``mde_factor ** (-1 / sd_slope)``; nan
+    when the SD hardly shrinks with n); direct-effect tests, which are
+    sqrt(n)-consistent, use the classical factor.  ``adjusted_units``
+    applies it to a reached size.
     """
 
     estimand: str
@@ -338,7 +340,12 @@ def _costs(scenario: Scenario, family: Sequence[Key], size: SizeResult) -> list[
             record = found[0] if found else None
             slope = record.sd_slope if record is not None else math.nan
             # Below this the SD barely shrinks with n and the power law would extrapolate wildly.
-            factor = mde_factor ** (-1.0 / slope) if math.isfinite(slope) and slope < -_MIN_SLOPE else math.nan
+            if key[0] == "direct":
+                # The direct-effect estimators are sqrt(n)-consistent (METHODS §2.2), so the classical
+                # square holds; a slope fitted to a few simulated sizes would only add noise.
+                factor = n_factor
+            else:
+                factor = mde_factor ** (-1.0 / slope) if math.isfinite(slope) and slope < -_MIN_SLOPE else math.nan
             # Only an exact answer is scaled: "reached at the smallest size" is an upper bound.
             required = record.required_units if record is not None and record.status == "reached" else None
             adjusted_units = math.ceil(required * factor) if required is not None and math.isfinite(factor) else None

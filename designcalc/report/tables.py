@@ -115,7 +115,7 @@ def key_answers_table(report: Report) -> Table:
                 s.status if s else "not computed", *mdes,
             ))
     return Table(
-        "key-answers", "Key answers",
+        "key-answers", "Required size and minimum detectable effect per estimand",
         f"Units needed for {report.scenario.design.target_power:.0%} power and the minimum detectable effect "
         "(outcome units) at each planned size, per estimand; 95% Monte Carlo intervals of the required size.",
         columns, tuple(rows),
@@ -250,7 +250,8 @@ def multiple_testing_tables(report: Report) -> list[Table]:
         f"{len(mt.hypotheses)} hypotheses at family-wise α = {mt.alpha:g}: Bonferroni tests each at α/m = {mt.bonferroni_alpha:.4g}; "
         "Holm's smallest threshold is the same, so planning each test at α/m guarantees its power under Holm too. "
         "MDE factor: the normal multipliers' ratio at a fixed size. Classical n factor: its square, if SE fell as 1/√n. "
-        "The n factor used here follows the SD's log-log slope in n measured by the size search (n grows by "
+        "The n factor used here is the classical one for the direct effect (its estimators are √n-consistent) and, for the "
+        "spillover and total effects, follows the SD's log-log slope in n measured by the size search (n grows by "
         "MDE factor^(-1/slope)); it is left out where the SD barely shrinks with n.",
         (Column("estimand", "estimand"), *_TEST_COLUMNS, Column("treatment probability", "treatment_probability", "fixed", 2),
          Column("per-test α", "per_test_alpha", "sig", 4), Column("MDE factor", "mde_factor", "fixed", 4),
