@@ -320,6 +320,7 @@ def simulate_power(
     max_graphs: int | None = None,
     relative_precision: float | None = None,
     on_point: Callable[[DesignPoint, Sequence[GraphDraws]], None] | None = None,
+    workers: int = 1,
 ) -> PowerResult:
     """Simulate the power of every planned estimator at every design point.
 
@@ -346,6 +347,9 @@ def simulate_power(
         Called with each finished design point and its graphs' draws (the
         raw estimates behind the records), for callers that need more than
         the summaries: the report's sampling distributions and Holm power.
+    workers
+        Local worker processes (1: this process).  A speed knob only: the
+        numbers are identical for any number (``designcalc.execution``).
 
     Returns
     -------
@@ -363,7 +367,11 @@ def simulate_power(
     8
     """
     import time
+    from contextlib import closing
 
+    from designcalc.execution import check_workers, simulate_graphs
+
+    workers = check_workers(workers)
     scenario = _override(scenario, units, treatment_probabilities, graphs, assignments_per_graph, seed)
     points = design_points(scenario)
     total = len(points) * scenario.simulation.graphs
@@ -374,30 +382,53 @@ def simulate_power(
     partial = False
     cap = max(max_graphs or scenario.simulation.max_graphs, scenario.simulation.graphs)
     precision = scenario.simulation.relative_precision if relative_precision is None else relative_precision
+    G = scenario.simulation.graphs
+
+    def accept(point: DesignPoint, draws: list[GraphDraws], summary: list[PowerRecord]) -> None:
+        records.extend(summary)
+        warnings.extend(_point_warnings(scenario, point, draws))
+        if on_point is not None:
+            on_point(point, draws)
+
+    def tick() -> None:
+        nonlocal finished
+        finished += 1
+        if progress is not None:
+            progress(EngineProgress(finished, total, time.perf_counter() - started))
+
     try:
-        for point in points:
-            draws: list[GraphDraws] = []
-            goal = scenario.simulation.graphs
-            while True:
-                summary = None
-                for g in range(len(draws), goal):
-                    draws.append(simulate_graph(scenario, point, g, batch_size=batch_size))
-                    if g == goal - 1:
-                        # Summarise before reporting progress, so that Ctrl-C in the
-                        # callback after a point's last graph keeps that point.
-                        summary = summarise_design_point(scenario, point, draws)
-                        if not adaptive or goal >= cap or _settled(summary, scenario.design.target_power, precision):
-                            records.extend(summary)
-                            warnings.extend(_point_warnings(scenario, point, draws))
-                            if on_point is not None:
-                                on_point(point, draws)
-                    finished += 1
-                    if progress is not None:
-                        progress(EngineProgress(finished, total, time.perf_counter() - started))
-                if not adaptive or goal >= cap or (summary is not None and _settled(summary, scenario.design.target_power, precision)):
-                    break
-                goal = min(cap, 2 * goal)
-                total += goal - len(draws)
+        if not adaptive:
+            # Every (point, graph) task at once, so the workers stay busy across design points.
+            tasks = [(point, g) for point in points for g in range(G)]
+            with closing(simulate_graphs(scenario, tasks, workers=workers, batch_size=batch_size)) as stream:
+                for point in points:
+                    draws: list[GraphDraws] = []
+                    for g in range(G):
+                        draws.append(next(stream))
+                        if g == G - 1:
+                            # Summarise before reporting progress, so that Ctrl-C in the
+                            # callback after a point's last graph keeps that point.
+                            accept(point, draws, summarise_design_point(scenario, point, draws))
+                        tick()
+        else:
+            for point in points:
+                draws = []
+                goal = G
+                while True:
+                    summary = None
+                    batch = [(point, g) for g in range(len(draws), goal)]
+                    with closing(simulate_graphs(scenario, batch, workers=workers, batch_size=batch_size)) as stream:
+                        for d in stream:
+                            draws.append(d)
+                            if len(draws) == goal:
+                                summary = summarise_design_point(scenario, point, draws)
+                                if goal >= cap or _settled(summary, scenario.design.target_power, precision):
+                                    accept(point, draws, summary)
+                            tick()
+                    if goal >= cap or (summary is not None and _settled(summary, scenario.design.target_power, precision)):
+                        break
+                    goal = min(cap, 2 * goal)
+                    total += goal - len(draws)
     except KeyboardInterrupt:
         partial = True
     warnings.extend(_scenario_warnings(scenario))

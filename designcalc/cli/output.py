@@ -37,6 +37,7 @@ __all__ = [
     "FORMATS",
     "Assignments",
     "FiguresDir",
+    "Workers",
     "OutputFormat",
     "ScenarioFile",
     "Seed",
@@ -84,6 +85,10 @@ TreatmentProbabilities = Annotated[
 Assignments = Annotated[int | None, typer.Option(min=1, max=100_000, help="Assignments per graph.")]
 Seed = Annotated[int | None, typer.Option(min=0, help="Root seed, overriding simulation.seed.")]
 OutputFormat = Annotated[str, typer.Option("--format", help="table, json or csv.")]
+Workers = Annotated[
+    int | None,
+    typer.Option("--workers", "-w", min=1, max=1024, help="Local worker processes (default: every core). A speed knob: the numbers are the same for any count."),
+]
 FiguresDir = Annotated[
     Path | None,
     typer.Option("--figures", help="Also write this command's figure (PNG and SVG) into this folder; created if missing."),

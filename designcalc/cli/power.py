@@ -9,6 +9,7 @@ import typer
 from rich.console import Console
 
 from designcalc.cli.output import (
+    Workers,
     Assignments,
     FiguresDir,
     OutputFormat,
@@ -28,6 +29,7 @@ from designcalc.cli.output import (
     simulate_with_progress,
     write_figures,
 )
+from designcalc.execution import available_workers
 from designcalc.power import PowerResult, simulate_power
 from designcalc.scenario import Scenario
 
@@ -85,12 +87,14 @@ def register(app: typer.Typer) -> None:
         adaptive: Annotated[bool, typer.Option("--adaptive", help="Add graphs (doubling, up to simulation.max_graphs) until every test's power is clearly above or below the target or known to within simulation.relative_precision (in power units).")] = False,
         output_format: OutputFormat = "table",
         figures: FiguresDir = None,
+        workers: Workers = None,
     ) -> None:
         """Simulate power, size and coverage of every planned estimator at every design point."""
         loaded = load_checked(scenario, output_format, treatment_probability)
         solve = partial(
             simulate_power, loaded, units=units, treatment_probabilities=treatment_probability, graphs=graphs,
             assignments_per_graph=assignments, seed=seed, adaptive=adaptive,
+            workers=workers or available_workers(),
         )
         check_figures_dir(figures)
         result = simulate_with_progress(solve, known_total=True)

@@ -14,11 +14,13 @@ from designcalc.cli.output import (
     ScenarioFile,
     Seed,
     Units,
+    Workers,
     check_precision,
     check_probabilities,
     graphs_option,
 )
 from designcalc.engine import EngineProgress
+from designcalc.execution import available_workers
 from designcalc.report import ReportSettings, build_report, write_report
 from designcalc.report.files import check_target
 from designcalc.scenario import load_scenario
@@ -40,6 +42,7 @@ def register(app: typer.Typer) -> None:
         search_graphs: Annotated[int | None, graphs_option("Graphs the sample-size search starts from (default: half of the graphs, at least 8).")] = None,
         max_units: Annotated[int | None, typer.Option(min=8, max=2_000_000, help="Largest network size the sample-size search tries.")] = None,
         compare_units: Annotated[int | None, typer.Option(min=4, max=2_000_000, help="Size at which treatment probabilities are compared (default: the middle planned size).")] = None,
+        workers: Workers = None,
     ) -> None:
         """Write the power-analysis appendix: HTML, Markdown, LaTeX, CSV and JSON tables, figures, scenario copy, provenance."""
         from designcalc.cli.main import stderr_console
@@ -50,6 +53,7 @@ def register(app: typer.Typer) -> None:
             tests=tuple(test or ()), all_tests=all_tests, precision=precision, search_graphs=search_graphs or 0,
             max_units=max_units, compare_units=compare_units or 0, units=tuple(units or ()),
             treatment_probabilities=tuple(treatment_probability or ()), graphs=graphs, assignments_per_graph=assignments, seed=seed,
+            workers=workers or available_workers(),
         )
         loaded = load_scenario(scenario)
         check_target(out)  # before the simulation, not after it

@@ -97,6 +97,7 @@ class ReportSettings:
     assignments_per_graph: int | None = None
     seed: int | None = None
     batch_size: int = 16
+    workers: int = 1  # local processes for the power table; a speed knob, not in the provenance
 
     def __post_init__(self) -> None:
         if not 0 < self.precision <= 0.5:
@@ -112,6 +113,7 @@ class ReportSettings:
             ("units", min(self.units, default=4), 4), ("graphs", self.graphs or 2, 2),
             ("assignments_per_graph", self.assignments_per_graph or 1, 1), ("compare_units", self.compare_units or 4, 4),
             ("max_units", self.max_units or 8, 8), ("batch_size", self.batch_size, 1), ("seed", self.seed or 0, 0),
+            ("workers", self.workers, 1),
         )
         for name, value, low in checks:
             if value < low:
@@ -413,7 +415,7 @@ def build_report(
     G = scenario.simulation.graphs
     search_graphs = settings.search_graphs or max(8, G // 2)
     compare_units = settings.compare_units or units[(len(units) - 1) // 2]
-    power = simulate_power(scenario, batch_size=settings.batch_size, progress=phase("power"), on_point=capture)
+    power = simulate_power(scenario, batch_size=settings.batch_size, progress=phase("power"), on_point=capture, workers=settings.workers)
     _refuse_partial(power.partial)
     mde = minimum_detectable_effects(
         solving, relative_precision=settings.precision, batch_size=settings.batch_size, progress=phase("minimum detectable effects"),

@@ -1,0 +1,73 @@
+"""Execution backends: the same numbers on any number of workers (STYLE.md §4), Ctrl-C keeps finished graphs."""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+from reproducibility import without_time
+
+from designcalc.errors import DesignCalcError
+from designcalc.execution import check_workers
+from designcalc.power import simulate_power
+from designcalc.scenario import load_scenario
+
+ROOT = Path(__file__).parents[1]
+DEMO = ROOT / "scenarios" / "lake_orrin_savings.toml"
+
+
+@pytest.mark.parametrize("adaptive", [False, True])
+def test_power_is_identical_on_one_and_two_workers(adaptive):
+    """simulate_power gives equal (not close) results in-process and on a two-process pool, adaptive or not."""
+    s = load_scenario(DEMO)
+    settings = dict(units=[200, 300], treatment_probabilities=[0.3, 0.5], graphs=4, assignments_per_graph=5)
+    if adaptive:
+        settings.update(adaptive=True, max_graphs=8, relative_precision=0.001)
+    one = simulate_power(s, workers=1, **settings)
+    two = simulate_power(s, workers=2, **settings)
+    assert without_time(one) == without_time(two)
+    if adaptive:
+        assert {r.graphs for r in two.records} == {8}
+
+
+def test_on_point_sees_the_same_draws_on_a_pool():
+    """The raw draws handed to on_point are identical whatever the worker count (the report's Holm power uses them)."""
+    s = load_scenario(DEMO)
+    seen = {1: [], 2: []}
+    for workers in (1, 2):
+        simulate_power(s, units=[200], treatment_probabilities=[0.5], graphs=3, assignments_per_graph=4, workers=workers,
+                       on_point=lambda point, draws, w=workers: seen[w].append([d.estimates for d in draws]))
+    for a, b in zip(seen[1][0], seen[2][0]):
+        assert a.keys() == b.keys() and all((a[k] == b[k]).all() for k in a)
+
+
+@pytest.mark.parametrize("bad", [0, -1, 1.5])
+def test_workers_must_be_a_positive_whole_number(bad):
+    """A worker count below 1 or not whole is refused with its name."""
+    with pytest.raises(DesignCalcError, match=r"`workers` must be a whole number >= 1"):
+        check_workers(bad)
+
+
+def test_ctrl_c_on_a_pool_keeps_finished_points_and_leaves_no_workers():
+    """SIGINT to `designcalc power --workers 2` prints the finished design points (exit 130) and no worker survives."""
+    proc = subprocess.Popen(
+        [sys.executable, "-m", "designcalc", "power", str(DEMO), "-n", "300", "-n", "20000", "-p", "0.5", "--graphs", "24",
+         "--workers", "2", "--format", "json"],
+        cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True,
+    )
+    time.sleep(7)  # start-up and the 300-unit point take about 2 s; the 20000-unit one about 30 s on two workers
+    os.killpg(proc.pid, signal.SIGINT)  # as a terminal does: the whole process group
+    out, err = proc.communicate(timeout=120)
+    assert proc.returncode == 130, err
+    import json
+
+    data = json.loads(out)
+    assert data["partial"] is True
+    assert {r["units"] for r in data["results"]} == {300}
+    with pytest.raises(ProcessLookupError):
+        os.killpg(proc.pid, 0)  # nothing left in the group
