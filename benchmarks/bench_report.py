@@ -18,13 +18,14 @@ from pathlib import Path
 
 from designcalc import load_scenario
 from designcalc.engine import EngineProgress
+from designcalc.execution import available_workers
 from designcalc.report import ReportSettings, build_report, write_report
 
 ROOT = Path(__file__).resolve().parents[1]
 DEMOS = ("lake_orrin_savings.toml", "marrow_valley_hygiene.toml")
 
 
-def bench(path: Path, precision: float) -> None:
+def bench(path: Path, precision: float, workers: int) -> None:
     scenario = load_scenario(path)
     marks: dict[str, list[float]] = {}
 
@@ -33,7 +34,7 @@ def bench(path: Path, precision: float) -> None:
         marks.setdefault(phase, [now, now, 0])[1:] = [now, update.finished_graphs]
 
     start = time.perf_counter()
-    report = build_report(scenario, ReportSettings(precision=precision), progress=progress)
+    report = build_report(scenario, ReportSettings(precision=precision, workers=workers), progress=progress)
     built = time.perf_counter()
     with tempfile.TemporaryDirectory() as tmp:
         out = write_report(report, Path(tmp) / "report")
@@ -52,9 +53,11 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("scenarios", nargs="*", type=Path, default=[ROOT / "scenarios" / d for d in DEMOS])
     parser.add_argument("--precision", type=float, default=0.1)
+    parser.add_argument("--workers", type=int, default=available_workers(), help="local processes (default: every core, as the command line)")
     args = parser.parse_args()
     for path in args.scenarios:
-        bench(path, args.precision)
+        print(f"{args.workers} worker(s)")
+        bench(path, args.precision, args.workers)
 
 
 if __name__ == "__main__":

@@ -31,6 +31,7 @@ from __future__ import annotations
 
 import math
 import time
+from contextlib import closing
 from dataclasses import asdict, dataclass
 from typing import Callable, Sequence
 
@@ -47,8 +48,8 @@ from designcalc.engine import (
     Run,
     null_label,
     planned_keys,
-    simulate_graph,
 )
+from designcalc.execution import check_workers, simulate_graphs
 from designcalc.inference import Z95, critical_value, floored_power_se, probit, reference_distribution
 from designcalc.power import CAUTIONS, FlaggedRecord, ResultTable, clustered_mean_se, clustered_sd, provenance, reject, stack_run
 from designcalc.scenario import Scenario
@@ -138,8 +139,9 @@ class _Summary:
 class _Sizes:
     """Simulations of the scenario's model at several sizes for one treatment probability."""
 
-    def __init__(self, scenario: Scenario, pi: float, batch_size: int, tick: Callable[[], None]) -> None:
+    def __init__(self, scenario: Scenario, pi: float, batch_size: int, tick: Callable[[], None], workers: int = 1) -> None:
         self.scenario = scenario
+        self.workers = workers
         self.pi = pi
         self.batch_size = batch_size
         self.tick = tick
@@ -153,9 +155,11 @@ class _Sizes:
     def ensure(self, n: int, graphs: int, keys: Sequence[tuple[str, str, str]] = ()) -> None:
         have = self.draws.setdefault(n, [])
         point = DesignPoint(n, self.pi)
-        for g in range(len(have), graphs):
-            have.append(simulate_graph(self.scenario, point, g, runs=self.run, batch_size=self.batch_size))
-            self.tick()
+        tasks = [(point, g) for g in range(len(have), graphs)]
+        with closing(simulate_graphs(self.scenario, tasks, workers=self.workers, batch_size=self.batch_size, runs=self.run)) as stream:
+            for draws in stream:
+                have.append(draws)
+                self.tick()
         for key in keys:
             path = self.paths.setdefault(key, {})
             path[n] = max(path.get(n, 0), graphs)
@@ -172,9 +176,11 @@ class _Sizes:
         run = [Run(label, self.scenario.outcome.null_for(key[0]), (key[0],), frozenset({key}))]
         point = DesignPoint(n, self.pi)
         draws = []
-        for g in range(graphs):
-            draws.append(simulate_graph(self.scenario, point, g, runs=run, batch_size=self.batch_size))
-            self.tick()
+        tasks = [(point, g) for g in range(graphs)]
+        with closing(simulate_graphs(self.scenario, tasks, workers=self.workers, batch_size=self.batch_size, runs=run)) as stream:
+            for d in stream:
+                draws.append(d)
+                self.tick()
         design = self.scenario.design
         reference = reference_distribution(design.reference_distribution, key[0], key[1], n, self.scenario.n_covariates)
         critical = critical_value(design.significance_level, design.alternative, reference.df)
@@ -269,6 +275,7 @@ def required_sample_size(
     max_graphs: int | None = None,
     batch_size: int = 16,
     progress: Callable[[EngineProgress], None] | None = None,
+    workers: int = 1,
 ) -> SizeResult:
     """Units needed for the target power, per treatment probability and planned test (module docstring).
 
@@ -284,6 +291,9 @@ def required_sample_size(
         Overrides of ``simulation.relative_precision`` (target half-width of
         the 95% Monte Carlo interval of n, relative to n) and
         ``simulation.max_graphs`` (cap on graphs at the verified size).
+    workers
+        Local worker processes for the graphs of each simulated size (1: this
+        process); the numbers are identical for any number.
 
     Examples
     --------
@@ -318,7 +328,7 @@ def required_sample_size(
 
     try:
         for pi in scenario.design.treatment_probabilities:
-            sizes = _Sizes(scenario, pi, batch_size, tick)
+            sizes = _Sizes(scenario, pi, batch_size, tick, check_workers(workers))
             records.extend(_search(scenario, sizes, limit, precision, cap, warnings))
     except KeyboardInterrupt:
         partial = True

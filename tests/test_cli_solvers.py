@@ -22,6 +22,7 @@ from rich.console import Console
 from typer.testing import CliRunner
 
 import designcalc.mde
+import designcalc.execution
 import designcalc.sample_size
 from designcalc.cli.main import app
 from designcalc.cli.output import progress_reporter
@@ -218,7 +219,7 @@ def test_bad_options_exit_2_and_name_the_option(args: tuple[str, ...], expected:
 
 
 def _interrupt_at(module: object, monkeypatch: pytest.MonkeyPatch, when: object) -> None:
-    """Make the solver's graph simulation raise KeyboardInterrupt (what Ctrl-C does) at the chosen design point."""
+    """Make the graph simulation raise KeyboardInterrupt (what Ctrl-C does) at the chosen design point (size: in the executor, which its workers inherit by fork)."""
     original = module.simulate_graph  # type: ignore[attr-defined]
 
     def simulate_graph(scenario, point, *args, **kwargs):  # type: ignore[no-untyped-def]
@@ -233,7 +234,7 @@ def _interrupt_at(module: object, monkeypatch: pytest.MonkeyPatch, when: object)
     ("module", "args", "when", "finished"),
     [
         (designcalc.mde, ("mde", MARROW, "-n", "200", "-n", "300", "-p", "0.5", *TINY, *PRECISE), lambda p: p.units == 300, {"units": 200}),
-        (designcalc.sample_size, ("size", MARROW, "-p", "0.4", "-p", "0.5", "--max-units", "800", *TINY, *PRECISE), lambda p: p.treatment_probability == 0.5, {"treatment_probability": 0.4}),
+        (designcalc.execution, ("size", MARROW, "-p", "0.4", "-p", "0.5", "--max-units", "800", *TINY, *PRECISE), lambda p: p.treatment_probability == 0.5, {"treatment_probability": 0.4}),
         (designcalc.mde, ("compare", MARROW, "-n", "200", "-n", "300", "-p", "0.5", *TINY, "--objective", "direct"), lambda p: p.units == 300, {"units": 200}),
     ],
     ids=["mde", "size", "compare"],

@@ -71,3 +71,18 @@ def test_ctrl_c_on_a_pool_keeps_finished_points_and_leaves_no_workers():
     assert {r["units"] for r in data["results"]} == {300}
     with pytest.raises(ProcessLookupError):
         os.killpg(proc.pid, 0)  # nothing left in the group
+
+
+def test_sample_size_is_identical_on_one_and_two_workers():
+    """required_sample_size gives equal results in-process and on a two-process pool (its grid and refinement)."""
+    from dataclasses import replace
+
+    from designcalc.sample_size import required_sample_size
+
+    s = load_scenario(DEMO)
+    s = replace(s, estimators=replace(s.estimators, direct=("hajek",), direct_variance=("neyman",), spillover=("pc_balancing",)))
+    settings = dict(treatment_probabilities=[0.5], graphs=8, assignments_per_graph=5, relative_precision=0.3, max_units=2000)
+    one = required_sample_size(s, workers=1, **settings)
+    two = required_sample_size(s, workers=2, **settings)
+    assert without_time(one) == without_time(two)
+    assert any(r.points for r in two.records)

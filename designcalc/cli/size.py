@@ -10,6 +10,7 @@ import typer
 from rich.console import Console
 
 from designcalc.cli.output import (
+    Workers,
     Assignments,
     FiguresDir,
     OutputFormat,
@@ -33,6 +34,7 @@ from designcalc.cli.output import (
     span,
     write_figures,
 )
+from designcalc.execution import available_workers
 from designcalc.sample_size import SizeRecord, SizeResult, required_sample_size
 from designcalc.scenario import Scenario
 
@@ -118,12 +120,14 @@ def register(app: typer.Typer) -> None:
         max_graphs: Annotated[int | None, graphs_option("Most graphs at the verified size; overrides simulation.max_graphs.")] = None,
         output_format: OutputFormat = "table",
         figures: FiguresDir = None,
+        workers: Workers = None,
     ) -> None:
         """Units needed for the target power, per treatment probability and planned test; no scaling law assumed."""
         loaded = load_checked(scenario, output_format, treatment_probability, precision=precision, max_graphs=max_graphs, graphs=graphs)
         solve = partial(
             required_sample_size, loaded, treatment_probabilities=treatment_probability, max_units=max_units, graphs=graphs,
             assignments_per_graph=assignments, seed=seed, relative_precision=precision, max_graphs=max_graphs,
+            workers=workers or available_workers(),
         )
         limit = max_units or loaded.population.search_limit
         requested, cap = precision_settings(loaded, precision, max_graphs, graphs)

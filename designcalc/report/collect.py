@@ -97,7 +97,7 @@ class ReportSettings:
     assignments_per_graph: int | None = None
     seed: int | None = None
     batch_size: int = 16
-    workers: int = 1  # local processes for the power table; a speed knob, not in the provenance
+    workers: int = 1  # local processes for the power table and the size search; a speed knob, not in the provenance
 
     def __post_init__(self) -> None:
         if not 0 < self.precision <= 0.5:
@@ -423,7 +423,7 @@ def build_report(
     _refuse_partial(mde.partial)
     size = required_sample_size(
         solving, graphs=search_graphs, relative_precision=settings.precision, max_units=settings.max_units,
-        batch_size=settings.batch_size, progress=phase("sample size"),
+        batch_size=settings.batch_size, progress=phase("sample size"), workers=settings.workers,
     )
     _refuse_partial(size.partial)
     compare = compare_treatment_probabilities(
