@@ -56,11 +56,14 @@ def test_workers_must_be_a_positive_whole_number(bad):
 def test_ctrl_c_on_a_pool_keeps_finished_points_and_leaves_no_workers():
     """SIGINT to `designcalc power --workers 2` prints the finished design points (exit 130) and no worker survives."""
     proc = subprocess.Popen(
-        [sys.executable, "-m", "designcalc", "power", str(DEMO), "-n", "300", "-n", "20000", "-p", "0.5", "--graphs", "24",
+        [sys.executable, "-m", "designcalc", "power", str(DEMO), "-n", "300", "-n", "40000", "-p", "0.5", "--graphs", "24",
          "--workers", "2", "--format", "json"],
         cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True, start_new_session=True,
+        # A background job (as CI may run us) inherits SIGINT ignored, and Python then installs no
+        # KeyboardInterrupt handler; restore the default so the child behaves as under a terminal.
+        preexec_fn=lambda: signal.signal(signal.SIGINT, signal.SIG_DFL),
     )
-    time.sleep(7)  # start-up and the 300-unit point take about 2 s; the 20000-unit one about 30 s on two workers
+    time.sleep(7)  # start-up and the 300-unit point take about 2 s; the 40000-unit one about 30 s on two workers
     os.killpg(proc.pid, signal.SIGINT)  # as a terminal does: the whole process group
     out, err = proc.communicate(timeout=120)
     assert proc.returncode == 130, err
