@@ -28,6 +28,7 @@ from dataclasses import dataclass, field, replace
 from typing import Callable, Iterable, Sequence
 
 import numpy as np
+from threadpoolctl import threadpool_limits
 
 from designcalc.covariates import draw_covariates, latent_individual_scores
 from designcalc.estimands import Estimands, ExposureMoments, estimands_from_moments, exact_estimands, exposure_moments
@@ -490,6 +491,23 @@ def simulate_graph(
     (columns processed at once) is a speed knob only: every random number is
     drawn before batching, and the estimators reduce each column on its own.
     """
+    # One BLAS thread: eigen-solvers and dense products then reduce in the same order on every
+    # machine, backend and worker count, so the numbers are identical, not close (a report
+    # rebuilt in another process differed in the last digits with threaded OpenBLAS).
+    with threadpool_limits(1):
+        return _simulate_graph(scenario, point, graph_index, runs=runs, batch_size=batch_size, cache=cache, keep_units=keep_units)
+
+
+def _simulate_graph(
+    scenario: Scenario,
+    point: DesignPoint,
+    graph_index: int,
+    *,
+    runs: Sequence[Run] | None,
+    batch_size: int,
+    cache: GraphCache | None,
+    keep_units: bool,
+) -> GraphDraws:
     runs = power_runs(scenario) if runs is None else runs
     n, pi = point.units, point.treatment_probability
     g = cache.get(scenario, point, graph_index) if cache is not None else _prepare(scenario, point, graph_index)

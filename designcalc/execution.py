@@ -1,4 +1,4 @@
-"""Where graphs are simulated: in this process, or in a pool of local worker processes.
+"""Where graphs are simulated: in this process, a pool of local worker processes, or a dask cluster.
 
 A task is one graph of one design point, ``(point, graph_index)``.  Its
 random numbers come from the seed tree keyed by that content
@@ -31,7 +31,10 @@ from designcalc.engine import DesignPoint, GraphDraws, Run, simulate_graph
 from designcalc.errors import DesignCalcError
 from designcalc.scenario import Scenario
 
-__all__ = ["available_workers", "check_workers", "GraphTask", "simulate_graphs"]
+__all__ = ["available_workers", "check_workers", "GraphTask", "simulate_graphs", "LOCAL_CLUSTER"]
+
+#: ``cluster=LOCAL_CLUSTER`` starts a dask ``LocalCluster`` on this machine for the call (tests, trying it out).
+LOCAL_CLUSTER = "local"
 
 GraphTask = tuple[DesignPoint, int]
 
@@ -68,6 +71,48 @@ def _run_task(task: GraphTask, batch_size: int) -> GraphDraws:
     return simulate_graph(_WORKER_SCENARIO, point, g, runs=_WORKER_RUNS, batch_size=batch_size)
 
 
+def _run_on_dask(task: GraphTask, scenario: Scenario, runs: Sequence[Run] | None, columns: int) -> GraphDraws:
+    point, g = task
+    with threadpool_limits(1):
+        return simulate_graph(scenario, point, g, runs=runs, batch_size=columns)
+
+
+def _simulate_on_dask(
+    scenario: Scenario, tasks: Sequence[GraphTask], cluster: str, batch_size: int, runs: Sequence[Run] | None,
+) -> Iterator[GraphDraws]:
+    try:
+        from distributed import Client, LocalCluster
+    except ImportError:
+        raise DesignCalcError(
+            "--cluster needs dask.distributed, which is not installed; install the extra: pip install 'designcalc[cluster]'"
+        ) from None
+    local = None
+    try:
+        if cluster == LOCAL_CLUSTER:
+            local = LocalCluster(n_workers=available_workers(), threads_per_worker=1, processes=True, dashboard_address=None)
+            client = Client(local)
+        else:
+            client = Client(cluster, timeout=10)
+    except OSError as exc:
+        if local is not None:
+            local.close()
+        raise DesignCalcError(f"--cluster {cluster}: cannot reach the dask scheduler ({exc})") from None
+    futures = []
+    try:
+        # The scenario travels once per worker (scattered), the tasks are tiny.
+        shared = client.scatter(scenario, broadcast=True)
+        # (Client.map has its own batch_size keyword, hence "columns".)
+        futures = client.map(_run_on_dask, list(tasks), scenario=shared, runs=runs, columns=batch_size, pure=False)
+        for future in futures:
+            yield future.result()
+    finally:
+        for future in futures:
+            future.cancel()
+        client.close()
+        if local is not None:
+            local.close()
+
+
 def simulate_graphs(
     scenario: Scenario,
     tasks: Sequence[GraphTask],
@@ -75,12 +120,16 @@ def simulate_graphs(
     workers: int = 1,
     batch_size: int = 16,
     runs: Sequence[Run] | None = None,
+    cluster: str | None = None,
 ) -> Iterator[GraphDraws]:
-    """Yield ``simulate_graph`` for each task, in task order, on ``workers`` processes.
+    """Yield ``simulate_graph`` for each task, in task order, on ``workers`` processes or a dask cluster.
 
     ``workers=1`` runs in this process (for debugging and small jobs).  With
     more, a local process pool is started for this call and closed when the
-    iterator is exhausted or closed.
+    iterator is exhausted or closed.  ``cluster`` (a dask scheduler address
+    such as ``tcp://10.0.0.5:8786``, or ``LOCAL_CLUSTER``) sends the tasks to
+    dask.distributed instead (the ``designcalc[cluster]`` extra); ``workers``
+    is then ignored.  The numbers are the same on every backend.
 
     Examples
     --------
@@ -94,6 +143,10 @@ def simulate_graphs(
     True
     """
     workers = check_workers(workers)
+    if cluster is not None:
+        if tasks:
+            yield from _simulate_on_dask(scenario, tasks, cluster, batch_size, runs)
+        return
     if workers == 1 or len(tasks) <= 1:
         for point, g in tasks:
             with threadpool_limits(1):  # as in the workers (module docstring); not held across yields

@@ -321,6 +321,7 @@ def simulate_power(
     relative_precision: float | None = None,
     on_point: Callable[[DesignPoint, Sequence[GraphDraws]], None] | None = None,
     workers: int = 1,
+    cluster: str | None = None,
 ) -> PowerResult:
     """Simulate the power of every planned estimator at every design point.
 
@@ -350,6 +351,9 @@ def simulate_power(
     workers
         Local worker processes (1: this process).  A speed knob only: the
         numbers are identical for any number (``designcalc.execution``).
+    cluster
+        A dask scheduler address (or ``"local"``) to run the graphs on instead
+        of local processes; same numbers (``designcalc.execution``).
 
     Returns
     -------
@@ -400,7 +404,7 @@ def simulate_power(
         if not adaptive:
             # Every (point, graph) task at once, so the workers stay busy across design points.
             tasks = [(point, g) for point in points for g in range(G)]
-            with closing(simulate_graphs(scenario, tasks, workers=workers, batch_size=batch_size)) as stream:
+            with closing(simulate_graphs(scenario, tasks, workers=workers, batch_size=batch_size, cluster=cluster)) as stream:
                 for point in points:
                     draws: list[GraphDraws] = []
                     for g in range(G):
@@ -417,7 +421,7 @@ def simulate_power(
                 while True:
                     summary = None
                     batch = [(point, g) for g in range(len(draws), goal)]
-                    with closing(simulate_graphs(scenario, batch, workers=workers, batch_size=batch_size)) as stream:
+                    with closing(simulate_graphs(scenario, batch, workers=workers, batch_size=batch_size, cluster=cluster)) as stream:
                         for d in stream:
                             draws.append(d)
                             if len(draws) == goal:

@@ -139,9 +139,10 @@ class _Summary:
 class _Sizes:
     """Simulations of the scenario's model at several sizes for one treatment probability."""
 
-    def __init__(self, scenario: Scenario, pi: float, batch_size: int, tick: Callable[[], None], workers: int = 1) -> None:
+    def __init__(self, scenario: Scenario, pi: float, batch_size: int, tick: Callable[[], None], workers: int = 1, cluster: str | None = None) -> None:
         self.scenario = scenario
         self.workers = workers
+        self.cluster = cluster
         self.pi = pi
         self.batch_size = batch_size
         self.tick = tick
@@ -156,7 +157,7 @@ class _Sizes:
         have = self.draws.setdefault(n, [])
         point = DesignPoint(n, self.pi)
         tasks = [(point, g) for g in range(len(have), graphs)]
-        with closing(simulate_graphs(self.scenario, tasks, workers=self.workers, batch_size=self.batch_size, runs=self.run)) as stream:
+        with closing(simulate_graphs(self.scenario, tasks, workers=self.workers, batch_size=self.batch_size, runs=self.run, cluster=self.cluster)) as stream:
             for draws in stream:
                 have.append(draws)
                 self.tick()
@@ -177,7 +178,7 @@ class _Sizes:
         point = DesignPoint(n, self.pi)
         draws = []
         tasks = [(point, g) for g in range(graphs)]
-        with closing(simulate_graphs(self.scenario, tasks, workers=self.workers, batch_size=self.batch_size, runs=run)) as stream:
+        with closing(simulate_graphs(self.scenario, tasks, workers=self.workers, batch_size=self.batch_size, runs=run, cluster=self.cluster)) as stream:
             for d in stream:
                 draws.append(d)
                 self.tick()
@@ -276,6 +277,7 @@ def required_sample_size(
     batch_size: int = 16,
     progress: Callable[[EngineProgress], None] | None = None,
     workers: int = 1,
+    cluster: str | None = None,
 ) -> SizeResult:
     """Units needed for the target power, per treatment probability and planned test (module docstring).
 
@@ -293,7 +295,8 @@ def required_sample_size(
         ``simulation.max_graphs`` (cap on graphs at the verified size).
     workers
         Local worker processes for the graphs of each simulated size (1: this
-        process); the numbers are identical for any number.
+        process); the numbers are identical for any number.  ``cluster``: a
+        dask scheduler address instead (``designcalc.execution``).
 
     Examples
     --------
@@ -328,7 +331,7 @@ def required_sample_size(
 
     try:
         for pi in scenario.design.treatment_probabilities:
-            sizes = _Sizes(scenario, pi, batch_size, tick, check_workers(workers))
+            sizes = _Sizes(scenario, pi, batch_size, tick, check_workers(workers), cluster)
             records.extend(_search(scenario, sizes, limit, precision, cap, warnings))
     except KeyboardInterrupt:
         partial = True

@@ -89,3 +89,26 @@ def test_sample_size_is_identical_on_one_and_two_workers():
     two = required_sample_size(s, workers=2, **settings)
     assert without_time(one) == without_time(two)
     assert any(r.points for r in two.records)
+
+
+def test_power_on_a_dask_local_cluster_equals_the_local_run():
+    """simulate_power on a dask LocalCluster (2 worker processes) gives exactly the in-process numbers, kernel scenario too."""
+    pytest.importorskip("distributed", reason="dask.distributed not installed (pip install -e '.[test]')")
+    for name in ("lake_orrin_savings.toml", "marrow_valley_hygiene.toml"):
+        s = load_scenario(ROOT / "scenarios" / name)
+        settings = dict(units=[200, 300], treatment_probabilities=[0.4], graphs=3, assignments_per_graph=4)
+        local = simulate_power(s, workers=1, **settings)
+        dask = simulate_power(s, cluster="local", **settings)
+        assert without_time(local) == without_time(dask), name
+
+
+def test_an_unreachable_cluster_is_a_user_error():
+    """--cluster naming no scheduler exits 2 with a message naming --cluster and the address, no traceback."""
+    pytest.importorskip("distributed", reason="dask.distributed not installed")
+    run = subprocess.run(
+        [sys.executable, "-m", "designcalc", "power", str(DEMO), "-n", "200", "--graphs", "2", "--assignments", "2",
+         "--cluster", "tcp://127.0.0.1:9"],
+        cwd=ROOT, capture_output=True, text=True, timeout=120, check=False,
+    )
+    assert run.returncode == 2, run.stderr
+    assert "--cluster tcp://127.0.0.1:9: cannot reach the dask scheduler" in run.stderr and "Traceback" not in run.stderr

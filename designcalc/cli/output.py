@@ -38,6 +38,7 @@ __all__ = [
     "Assignments",
     "FiguresDir",
     "Workers",
+    "Cluster",
     "OutputFormat",
     "ScenarioFile",
     "Seed",
@@ -88,6 +89,10 @@ OutputFormat = Annotated[str, typer.Option("--format", help="table, json or csv.
 Workers = Annotated[
     int | None,
     typer.Option("--workers", "-w", min=1, max=1024, help="Local worker processes (default: every core). A speed knob: the numbers are the same for any count."),
+]
+Cluster = Annotated[
+    str | None,
+    typer.Option("--cluster", help="Run the simulation on a dask.distributed scheduler at this address (tcp://HOST:8786), or 'local' for a local dask cluster; needs the designcalc[cluster] extra. Same numbers."),
 ]
 FiguresDir = Annotated[
     Path | None,

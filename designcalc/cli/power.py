@@ -9,6 +9,7 @@ import typer
 from rich.console import Console
 
 from designcalc.cli.output import (
+    Cluster,
     Workers,
     Assignments,
     FiguresDir,
@@ -88,13 +89,14 @@ def register(app: typer.Typer) -> None:
         output_format: OutputFormat = "table",
         figures: FiguresDir = None,
         workers: Workers = None,
+        cluster: Cluster = None,
     ) -> None:
         """Simulate power, size and coverage of every planned estimator at every design point."""
         loaded = load_checked(scenario, output_format, treatment_probability)
         solve = partial(
             simulate_power, loaded, units=units, treatment_probabilities=treatment_probability, graphs=graphs,
             assignments_per_graph=assignments, seed=seed, adaptive=adaptive,
-            workers=workers or available_workers(),
+            workers=workers or available_workers(), cluster=cluster,
         )
         check_figures_dir(figures)
         result = simulate_with_progress(solve, known_total=True)

@@ -10,6 +10,7 @@ import typer
 from rich.console import Console
 
 from designcalc.cli.output import (
+    Cluster,
     Workers,
     Assignments,
     FiguresDir,
@@ -121,13 +122,14 @@ def register(app: typer.Typer) -> None:
         output_format: OutputFormat = "table",
         figures: FiguresDir = None,
         workers: Workers = None,
+        cluster: Cluster = None,
     ) -> None:
         """Units needed for the target power, per treatment probability and planned test; no scaling law assumed."""
         loaded = load_checked(scenario, output_format, treatment_probability, precision=precision, max_graphs=max_graphs, graphs=graphs)
         solve = partial(
             required_sample_size, loaded, treatment_probabilities=treatment_probability, max_units=max_units, graphs=graphs,
             assignments_per_graph=assignments, seed=seed, relative_precision=precision, max_graphs=max_graphs,
-            workers=workers or available_workers(),
+            workers=workers or available_workers(), cluster=cluster,
         )
         limit = max_units or loaded.population.search_limit
         requested, cap = precision_settings(loaded, precision, max_graphs, graphs)
