@@ -6,8 +6,8 @@ random numbers come from the seed tree keyed by that content
 that runs it, so every backend and worker count gives *identical* results;
 only the wall time changes.  Results come back in task order.
 
-BLAS threads: every task runs with BLAS/OpenMP limited to one thread (in
-this process too), through threadpoolctl.  Processes are the unit of
+BLAS threads: ``engine.simulate_graph`` runs every graph with one BLAS
+thread (threadpoolctl), wherever it runs.  Processes are the unit of
 parallelism; two workers each spinning two OpenBLAS threads on two cores
 made the pool slower than one process (measured: 0.96x), and one thread
 everywhere keeps the floating-point reductions the same on every backend.
@@ -25,8 +25,6 @@ import signal
 from collections.abc import Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
 
-from threadpoolctl import threadpool_limits
-
 from designcalc.engine import DesignPoint, GraphDraws, Run, simulate_graph
 from designcalc.errors import DesignCalcError
 from designcalc.scenario import Scenario
@@ -40,7 +38,6 @@ GraphTask = tuple[DesignPoint, int]
 
 _WORKER_SCENARIO: Scenario | None = None
 _WORKER_RUNS: Sequence[Run] | None = None
-_WORKER_LIMITS: object = None
 
 
 def available_workers() -> int:
@@ -59,10 +56,9 @@ def check_workers(workers: int) -> int:
 
 
 def _init_worker(scenario: Scenario, runs: Sequence[Run] | None) -> None:
-    global _WORKER_SCENARIO, _WORKER_RUNS, _WORKER_LIMITS
+    global _WORKER_SCENARIO, _WORKER_RUNS
     signal.signal(signal.SIGINT, signal.SIG_IGN)
     _WORKER_SCENARIO, _WORKER_RUNS = scenario, runs
-    _WORKER_LIMITS = threadpool_limits(1)  # kept for the worker's life
 
 
 def _run_task(task: GraphTask, batch_size: int) -> GraphDraws:
@@ -73,8 +69,7 @@ def _run_task(task: GraphTask, batch_size: int) -> GraphDraws:
 
 def _run_on_dask(task: GraphTask, scenario: Scenario, runs: Sequence[Run] | None, columns: int) -> GraphDraws:
     point, g = task
-    with threadpool_limits(1):
-        return simulate_graph(scenario, point, g, runs=runs, batch_size=columns)
+    return simulate_graph(scenario, point, g, runs=runs, batch_size=columns)
 
 
 def _simulate_on_dask(
@@ -149,9 +144,7 @@ def simulate_graphs(
         return
     if workers == 1 or len(tasks) <= 1:
         for point, g in tasks:
-            with threadpool_limits(1):  # as in the workers (module docstring); not held across yields
-                draws = simulate_graph(scenario, point, g, runs=runs, batch_size=batch_size)
-            yield draws
+            yield simulate_graph(scenario, point, g, runs=runs, batch_size=batch_size)
         return
     # fork where the platform has it: the scenario reaches the workers without pickling and
     # they start in milliseconds; elsewhere spawn, which pickles it once per worker.

@@ -398,8 +398,7 @@ def mde_units_figure(records: Sequence[MdeRecord], *, title: str = "") -> Figure
                 colour, marker = styles.get(label)
                 units = np.array([float(r.units) for r in finite])
                 mde = np.array([float(r.mde) for r in finite])
-                below = np.array([m - r.mde_low if _finite(r.mde_low) and r.mde_low <= m else 0.0 for r, m in zip(finite, mde)])
-                above = np.array([r.mde_high - m if _finite(r.mde_high) and r.mde_high >= m else 0.0 for r, m in zip(finite, mde)])
+                below, above = _interval_arms(finite, mde)
                 ax.errorbar(units, mde, yerr=[below, above], color=colour, marker=marker, markersize=3.5, linewidth=1.2,
                             elinewidth=0.9, capsize=2.0)
             if drawn:
@@ -491,10 +490,7 @@ def mde_probability_figure(rows: Sequence[CompareRow], *, units: int | None = No
                 probability = np.array([float(r.treatment_probability) for r in finite])
                 mde = np.array([float(r.mde) for r in finite])
                 all_non_negative &= bool(np.all(mde >= 0))
-                below = np.array([m - float(r.mde_low) if _finite(r.mde_low) and r.mde_low <= m else 0.0
-                                  for r, m in zip(finite, mde)])
-                above = np.array([float(r.mde_high) - m if _finite(r.mde_high) and r.mde_high >= m else 0.0
-                                  for r, m in zip(finite, mde)])
+                below, above = _interval_arms(finite, mde)
                 ax.errorbar(probability, mde, yerr=[below, above], color=colour, marker=marker, markersize=3.5,
                             linewidth=1.2, elinewidth=0.9, capsize=2.0)
                 best = [i for i, r in enumerate(finite) if r.best]
@@ -937,7 +933,7 @@ def _write_atomically(fig: Figure, path: pathlib.Path) -> None:
     try:
         with os.fdopen(handle, "wb") as file, mpl.rc_context(_SAVE_STYLE):
             fig.savefig(file, format=suffix, dpi=_PNG_DPI, metadata=metadata)
-        os.chmod(temporary, 0o666 & ~_umask())  # mkstemp makes 0600; give the file the usual permissions
+        os.chmod(temporary, 0o666 & ~current_umask())  # mkstemp makes 0600; give the file the usual permissions
         os.replace(temporary, path)
     except BaseException:
         pathlib.Path(temporary).unlink(missing_ok=True)
@@ -947,7 +943,8 @@ def _write_atomically(fig: Figure, path: pathlib.Path) -> None:
 # ---------------------------------------------------------------- helpers
 
 
-def _umask() -> int:
+def current_umask() -> int:
+    """The process umask, for files made by mkstemp/mkdtemp (0600/0700); os can only read it by setting it, so it is set back at once."""
     current = os.umask(0)
     os.umask(current)
     return current
@@ -1018,6 +1015,13 @@ def _units_label(x: float, _: object = None) -> str:
     if x >= 1e4:
         return f"{x / 1e3:g}k"
     return f"{x:,.0f}"
+
+
+def _interval_arms(rows: Sequence[CompareRow | MdeRecord], mde: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Error-bar arms from each row's [mde_low, mde_high]; a missing or inverted bound draws no arm."""
+    below = np.array([m - float(r.mde_low) if _finite(r.mde_low) and r.mde_low <= m else 0.0 for r, m in zip(rows, mde)])
+    above = np.array([float(r.mde_high) - m if _finite(r.mde_high) and r.mde_high >= m else 0.0 for r, m in zip(rows, mde)])
+    return below, above
 
 
 def _say_empty(ax: Axes, message: str) -> None:

@@ -28,7 +28,6 @@ from designcalc.engine import (
     GraphDraws,
     design_points,
     dropped_keys,
-    simulate_graph,
 )
 from designcalc.inference import Z95, critical_value, floored_power_se, reference_distribution
 from designcalc.scenario import Scenario

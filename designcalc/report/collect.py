@@ -21,7 +21,7 @@ from __future__ import annotations
 import datetime as _dt
 import math
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 
 import numpy as np
 import scipy as sp
@@ -120,12 +120,10 @@ class ReportSettings:
                 raise DesignCalcError(f"`{name}` must be at least {low}; got {value}")
 
     def to_dict(self) -> dict[str, object]:
-        return {
-            "tests": list(self.tests), "all_tests": self.all_tests, "precision": self.precision,
-            "search_graphs": self.search_graphs, "max_units": self.max_units, "compare_units": self.compare_units,
-            "units": list(self.units), "treatment_probabilities": list(self.treatment_probabilities),
-            "graphs": self.graphs, "assignments_per_graph": self.assignments_per_graph, "seed": self.seed,
-        }
+        """The settings that shape the numbers (batch size and workers are speed knobs only)."""
+        d = asdict(self)
+        del d["batch_size"], d["workers"]
+        return d
 
 
 @dataclass(frozen=True)

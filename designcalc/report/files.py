@@ -28,6 +28,7 @@ from pathlib import Path
 
 from designcalc.errors import DesignCalcError
 from designcalc.figures import (
+    current_umask,
     mde_probability_figure,
     network_figure,
     power_curve_figure,
@@ -44,6 +45,7 @@ from designcalc.report.render import (
     render_latex,
     render_markdown,
     reproduce_command,
+    scenario_copy_path,
 )
 from designcalc.report.tables import report_tables
 
@@ -52,11 +54,6 @@ __all__ = ["MARKER_FILE", "check_target", "report_data", "report_figures", "writ
 MARKER_FILE = "report.json"
 REPORT_FORMAT = "designcalc report"
 
-
-def scenario_copy_path(report: Report) -> str:
-    """Where the scenario copy goes in the folder: ``scenario/`` under the file's own name."""
-    name = Path(report.scenario.source).name
-    return f"scenario/{name if name.endswith('.toml') and name != '<scenario>' else 'scenario.toml'}"
 
 
 def report_figures(report: Report) -> dict[str, object]:
@@ -152,7 +149,7 @@ def write_report(report: Report, out: Path, *, on_file: Callable[[Path], None] |
         staging = Path(tempfile.mkdtemp(prefix=f".{out.name}.partial-", dir=out.parent))
     except OSError as exc:
         raise DesignCalcError(f"--out {out}: cannot create a folder in {out.parent} ({exc.strerror})") from None
-    os.chmod(staging, 0o777 & ~_umask())  # mkdtemp makes 0700; the report folder gets the usual permissions
+    os.chmod(staging, 0o777 & ~current_umask())  # mkdtemp makes 0700; the report folder gets the usual permissions
     try:
         _write_all(report, staging, on_file or (lambda path: None))
         _swap_into_place(staging, out)
@@ -163,12 +160,6 @@ def write_report(report: Report, out: Path, *, on_file: Callable[[Path], None] |
         shutil.rmtree(staging, ignore_errors=True)
         raise
     return out
-
-
-def _umask() -> int:
-    current = os.umask(0)
-    os.umask(current)
-    return current
 
 
 def _swap_into_place(staging: Path, out: Path) -> None:

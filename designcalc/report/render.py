@@ -11,19 +11,19 @@ import csv
 import html
 import io
 import json
-import math
 import re
 from collections.abc import Mapping, Sequence
+from pathlib import Path
 
 from designcalc.power import CAUTIONS
 from designcalc.report.collect import Report
-from designcalc.report.tables import Table
+from designcalc.report.tables import Table, json_safe
 
 __all__ = [
     "FIGURES",
     "design_in_words",
-    "json_safe",
     "latex_escape",
+    "scenario_copy_path",
     "render_csv",
     "render_html",
     "render_json",
@@ -88,8 +88,6 @@ def _tests_in_words(report: Report) -> str:
 def reproduce_command(report: Report, out: str = "REPORT_DIR") -> str:
     """The command line that rebuilds this report from the copied scenario."""
     st = report.settings
-    from designcalc.report.files import scenario_copy_path
-
     parts = ["designcalc", "report", scenario_copy_path(report), "--out", out]
     for n in st.units:
         parts += ["--units", str(n)]
@@ -113,10 +111,10 @@ def reproduce_command(report: Report, out: str = "REPORT_DIR") -> str:
     return " ".join(parts)
 
 
-def _copy(report: Report) -> str:
-    from designcalc.report.files import scenario_copy_path
-
-    return scenario_copy_path(report)
+def scenario_copy_path(report: Report) -> str:
+    """Where the scenario copy goes in the folder: ``scenario/`` under the file's own name."""
+    name = Path(report.scenario.source).name
+    return f"scenario/{name if name.endswith('.toml') else 'scenario.toml'}"
 
 
 def _provenance_rows(report: Report) -> list[tuple[str, str]]:
@@ -169,7 +167,7 @@ def render_html(report: Report, tables: Sequence[Table], figures_svg: Mapping[st
         f"<title>{e(s.name)}: power analysis appendix</title>", f"<style>{_STYLE}</style></head><body>",
         f"<h1>{e(s.name)}</h1>", f"<p>{e(s.description)}</p>",
         f'<p class="caption">Power analysis appendix made by designcalc {e(str(report.provenance["tool_version"]))} on '
-        f'{e(report.generated)} from <code>{e(_copy(report))}</code> (SHA-256 <code>{e(s.sha256)}</code>).</p>',
+        f'{e(report.generated)} from <code>{e(scenario_copy_path(report))}</code> (SHA-256 <code>{e(s.sha256)}</code>).</p>',
         '<div class="cautions"><strong>Read first.</strong><ul>' + "".join(f"<li>{e(c)}</li>" for c in CAUTIONS) + "</ul></div>",
         '<h2 id="design">1. The design in plain words</h2><dl class="design">',
         *(f"<dt>{e(k)}</dt><dd>{e(v)}</dd>" for k, v in design_in_words(report)),
@@ -247,7 +245,7 @@ def render_markdown(report: Report, tables: Sequence[Table], figure_stems: Seque
     out = [
         f"# {s.name}", "", s.description, "",
         f"Power analysis appendix made by designcalc {report.provenance['tool_version']} on {report.generated} from "
-        f"`{_copy(report)}` (SHA-256 `{s.sha256}`).", "",
+        f"`{scenario_copy_path(report)}` (SHA-256 `{s.sha256}`).", "",
         *(f"> **Caution.** {c}" for c in CAUTIONS), "",
         "## 1. The design in plain words", "", *(f"- **{k}.** {v}" for k, v in design_in_words(report)), "",
         "## 2. Key answers", "", _md_table(by_id["key-answers"]),
@@ -337,21 +335,3 @@ def render_csv(table: Table) -> str:
 def render_json(value: object) -> str:
     return json.dumps(json_safe(value), indent=2, ensure_ascii=False, allow_nan=False) + "\n"
 
-
-def json_safe(value: object) -> object:
-    """Nested data with nan as null and infinities as "inf"/"-inf" (JSON has neither); tuples as lists.
-
-    >>> json_safe({"a": float("nan"), "b": (1.0, float("inf"))})
-    {'a': None, 'b': [1.0, 'inf']}
-    """
-    if isinstance(value, float):
-        if math.isnan(value):
-            return None
-        if value in (float("inf"), float("-inf")):
-            return "inf" if value > 0 else "-inf"
-        return value
-    if isinstance(value, dict):
-        return {str(k): json_safe(v) for k, v in value.items()}
-    if isinstance(value, (list, tuple)):
-        return [json_safe(v) for v in value]
-    return value

@@ -9,6 +9,7 @@ the formats agree by construction and a test parses them back.
 from __future__ import annotations
 
 import math
+from collections.abc import Iterable
 from dataclasses import dataclass
 
 from designcalc.report.collect import Report
@@ -41,7 +42,7 @@ class Table:
     rows: tuple[tuple[object, ...], ...]
 
     def records(self) -> list[dict[str, object]]:
-        return [{c.key: _json_value(v) for c, v in zip(self.columns, row)} for row in self.rows]
+        return [{c.key: json_safe(v) for c, v in zip(self.columns, row)} for row in self.rows]
 
     def to_dict(self) -> dict[str, object]:
         return {
@@ -55,14 +56,37 @@ class Table:
         return [[format_cell(v, c) for c, v in zip(self.columns, row)] for row in self.rows]
 
 
-def _json_value(value: object) -> object:
-    """JSON has no nan or infinity: missing values are null, infinities the strings "inf"/"-inf"."""
+def json_safe(value: object) -> object:
+    """Nested data with nan as null and infinities as "inf"/"-inf" (JSON has neither); tuples as lists.
+
+    >>> json_safe({"a": float("nan"), "b": (1.0, float("inf"))})
+    {'a': None, 'b': [1.0, 'inf']}
+    """
     if isinstance(value, float):
         if math.isnan(value):
             return None
         if math.isinf(value):
             return "inf" if value > 0 else "-inf"
+        return value
+    if isinstance(value, dict):
+        return {str(k): json_safe(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [json_safe(v) for v in value]
     return value
+
+
+def _record_rows(columns: tuple[Column, ...], records: Iterable[object]) -> tuple[tuple[object, ...], ...]:
+    """Rows of result records whose field names are the columns' keys (flags joined, marks as yes/blank)."""
+
+    def cell(record: object, key: str) -> object:
+        value = getattr(record, key)
+        if isinstance(value, tuple):
+            return "; ".join(value)
+        if isinstance(value, bool):
+            return "yes" if value else ""
+        return value
+
+    return tuple(tuple(cell(r, c.key) for c in columns) for r in records)
 
 
 def format_cell(value: object, column: Column) -> str:
@@ -131,11 +155,7 @@ def power_table(report: Report) -> Table:
         Column("mean SE", "mean_standard_error", "sig", 3), Column("oracle power", "oracle_power", "fixed", 3),
         Column("replicates", "replicates", "int"), Column("flags", "flags"),
     )
-    rows = tuple(
-        (r.units, r.treatment_probability, r.estimand, r.estimator, r.variance_estimator, r.true_effect, r.power, r.power_mc_se,
-         r.bias, r.bias_mc_se, r.sd, r.mean_standard_error, r.oracle_power, r.replicates, "; ".join(r.flags))
-        for r in report.power.records
-    )
+    rows = _record_rows(columns, report.power.records)
     return Table(
         "power", "Power of every planned test",
         "Simulated power at each planned size and treatment probability with its Monte Carlo standard error "
@@ -151,11 +171,7 @@ def size_coverage_table(report: Report) -> Table:
         Column("size MC se", "size_mc_se", "fixed", 3), Column("coverage", "coverage", "fixed", 3),
         Column("coverage MC se", "coverage_mc_se", "fixed", 3), Column("flags", "flags"),
     )
-    rows = tuple(
-        (r.units, r.treatment_probability, r.estimand, r.estimator, r.variance_estimator, r.size, r.size_mc_se,
-         r.coverage, r.coverage_mc_se, "; ".join(r.flags))
-        for r in report.power.records
-    )
+    rows = _record_rows(columns, report.power.records)
     alpha = report.scenario.design.significance_level
     return Table(
         "size-coverage", "Size and coverage of the feasible tests",
@@ -173,11 +189,7 @@ def mde_table(report: Report) -> Table:
         Column("MDE (SD units)", "mde_sd_units", "sig", 3), Column("SE", "standard_error", "sig", 3),
         Column("method", "method"), Column("flags", "flags"),
     )
-    rows = tuple(
-        (r.units, r.treatment_probability, r.estimand, r.estimator, r.variance_estimator, r.mde, r.mde_low, r.mde_high,
-         r.mde_sd_units, r.standard_error, r.method, "; ".join(r.flags))
-        for r in report.mde.records
-    )
+    rows = _record_rows(columns, report.mde.records)
     return Table(
         "mde", "Minimum detectable effects",
         "Smallest effect (outcome units, and in SDs of the untreated outcome) detected with the target power, "
@@ -194,11 +206,7 @@ def sample_size_table(report: Report) -> Table:
         Column("verified power", "verified_power", "fixed", 3), Column("MC se", "verified_power_mc_se", "fixed", 3),
         Column("size", "size", "fixed", 3), Column("size MC se", "size_mc_se", "fixed", 3), Column("reason", "reason"),
     )
-    rows = tuple(
-        (r.treatment_probability, r.estimand, r.estimator, r.variance_estimator, r.status, r.required_units, r.units_low,
-         r.units_high, r.verified_power, r.verified_power_mc_se, r.size, r.size_mc_se, r.reason)
-        for r in report.size.records
-    )
+    rows = _record_rows(columns, report.size.records)
     return Table(
         "sample-size", "Required sample size",
         "Units needed for the target power, found by simulation and verified at the answer (power and test size there).",
@@ -213,11 +221,7 @@ def probability_table(report: Report) -> Table:
         Column("95% MC low", "mde_low", "sig", 4), Column("95% MC high", "mde_high", "sig", 4),
         Column("best", "best"), Column("tied with best", "tied_with_best"),
     )
-    rows = tuple(
-        (r.units, r.treatment_probability, r.estimand, r.estimator, r.variance_estimator, r.mde, r.mde_low, r.mde_high,
-         "yes" if r.best else "", "yes" if r.tied_with_best else "")
-        for r in report.compare.rows
-    )
+    rows = _record_rows(columns, report.compare.rows)
     return Table(
         "treatment-probabilities", "Minimum detectable effect against treatment probability",
         "Formula MDE (multiplier x simulated null SD) at one size for a grid of treatment probabilities; "
@@ -245,6 +249,20 @@ def multiple_testing_tables(report: Report) -> list[Table]:
     mt = report.multiple_testing
     if mt is None:
         return []
+    cost_columns = (
+        Column("estimand", "estimand"), *_TEST_COLUMNS, Column("treatment probability", "treatment_probability", "fixed", 2),
+        Column("per-test α", "per_test_alpha", "sig", 4), Column("MDE factor", "mde_factor", "fixed", 4),
+        Column("classical n factor", "classical_factor", "fixed", 4), Column("SD slope", "sd_slope", "fixed", 2),
+        Column("n factor", "sample_size_factor", "fixed", 3), Column("required units", "required_units", "int"),
+        Column("units at adjusted α", "adjusted_units", "int"), Column("status", "status"),
+    )
+    power_columns = (
+        Column("units", "units", "int"), Column("treatment probability", "treatment_probability", "fixed", 2),
+        Column("estimand", "estimand"), *_TEST_COLUMNS, Column("power", "power", "fixed", 3),
+        Column("MC se", "power_mc_se", "fixed", 3), Column("Bonferroni", "bonferroni_power", "fixed", 3),
+        Column("MC se", "bonferroni_power_mc_se", "fixed", 3), Column("Holm", "holm_power", "fixed", 3),
+        Column("MC se", "holm_power_mc_se", "fixed", 3),
+    )
     levels = Table(
         "multiple-testing-cost", "Multiple testing: adjusted levels and their cost",
         f"{len(mt.hypotheses)} hypotheses at family-wise α = {mt.alpha:g}: Bonferroni tests each at α/m = {mt.bonferroni_alpha:.4g}; "
@@ -253,25 +271,13 @@ def multiple_testing_tables(report: Report) -> list[Table]:
         "The n factor used here is the classical one for the direct effect (its estimators are √n-consistent) and, for the "
         "spillover and total effects, follows the SD's log-log slope in n measured by the size search (n grows by "
         "MDE factor^(-1/slope)); it is left out where the SD barely shrinks with n.",
-        (Column("estimand", "estimand"), *_TEST_COLUMNS, Column("treatment probability", "treatment_probability", "fixed", 2),
-         Column("per-test α", "per_test_alpha", "sig", 4), Column("MDE factor", "mde_factor", "fixed", 4),
-         Column("classical n factor", "classical_factor", "fixed", 4), Column("SD slope", "sd_slope", "fixed", 2),
-         Column("n factor", "sample_size_factor", "fixed", 3), Column("required units", "required_units", "int"),
-         Column("units at adjusted α", "adjusted_units", "int"), Column("status", "status")),
-        tuple((c.estimand, c.estimator, c.variance_estimator, c.treatment_probability, c.per_test_alpha, c.mde_factor,
-               c.classical_factor, c.sd_slope, c.sample_size_factor, c.required_units, c.adjusted_units, c.status) for c in mt.costs),
+        cost_columns, _record_rows(cost_columns, mt.costs),
     )
     power = Table(
         "multiple-testing-power", "Multiple testing: power of each hypothesis under Bonferroni and Holm",
         "Rejection rates on the same simulated replicates as the power table, unadjusted, with Bonferroni and with Holm's "
         "step-down procedure (Holm 1979), with Monte Carlo standard errors.",
-        (Column("units", "units", "int"), Column("treatment probability", "treatment_probability", "fixed", 2),
-         Column("estimand", "estimand"), *_TEST_COLUMNS, Column("power", "power", "fixed", 3),
-         Column("MC se", "power_mc_se", "fixed", 3), Column("Bonferroni", "bonferroni_power", "fixed", 3),
-         Column("MC se", "bonferroni_power_mc_se", "fixed", 3), Column("Holm", "holm_power", "fixed", 3),
-         Column("MC se", "holm_power_mc_se", "fixed", 3)),
-        tuple((r.units, r.treatment_probability, r.estimand, r.estimator, r.variance_estimator, r.power, r.power_mc_se,
-               r.bonferroni_power, r.bonferroni_power_mc_se, r.holm_power, r.holm_power_mc_se) for r in mt.power),
+        power_columns, _record_rows(power_columns, mt.power),
     )
     return [levels, power]
 
