@@ -13,8 +13,13 @@ made the pool slower than one process (measured: 0.96x), and one thread
 everywhere keeps the floating-point reductions the same on every backend.
 
 Ctrl-C: workers ignore SIGINT (the terminal sends it to the whole process
-group), so only the parent sees it; it cancels what has not started and
-raises ``KeyboardInterrupt`` to the caller, which keeps every finished graph.
+group), so only the parent sees it; it cancels what has not started, waits
+for the running graphs and raises ``KeyboardInterrupt`` to the caller, which
+keeps every finished graph.
+
+With a results store (``designcalc.store``) the stored graphs are read
+instead of computed, and every computed graph is written as soon as it
+arrives, including graphs that finished out of order when Ctrl-C came.
 """
 
 from __future__ import annotations
@@ -22,19 +27,26 @@ from __future__ import annotations
 import multiprocessing
 import os
 import signal
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
+from contextlib import closing
+from typing import TYPE_CHECKING
 
-from designcalc.engine import DesignPoint, GraphDraws, Run, simulate_graph
+from designcalc.engine import DesignPoint, GraphDraws, Run, power_runs, simulate_graph
 from designcalc.errors import DesignCalcError
 from designcalc.scenario import Scenario
 
-__all__ = ["available_workers", "check_workers", "GraphTask", "simulate_graphs", "LOCAL_CLUSTER"]
+if TYPE_CHECKING:
+    from designcalc.store import ResultStore
+
+__all__ = ["LOCAL_CLUSTER", "GraphTask", "available_workers", "check_workers", "simulate_graphs"]
 
 #: ``cluster=LOCAL_CLUSTER`` starts a dask ``LocalCluster`` on this machine for the call (tests, trying it out).
 LOCAL_CLUSTER = "local"
 
 GraphTask = tuple[DesignPoint, int]
+# Called with each graph that finished but was never yielded (the caller stopped early).
+Salvage = Callable[[GraphTask, GraphDraws], None] | None
 
 _WORKER_SCENARIO: Scenario | None = None
 _WORKER_RUNS: Sequence[Run] | None = None
@@ -72,8 +84,18 @@ def _run_on_dask(task: GraphTask, scenario: Scenario, runs: Sequence[Run] | None
     return simulate_graph(scenario, point, g, runs=runs, batch_size=columns)
 
 
+def _salvage_finished(tasks: Sequence[GraphTask], futures: Sequence[object], start: int, salvage: Salvage) -> None:
+    """Hand graphs that finished after the caller stopped reading to ``salvage`` (the store keeps them)."""
+    if salvage is None:
+        return
+    for task, future in zip(tasks[start:], futures[start:]):
+        if future.done() and not future.cancelled() and future.exception() is None:  # type: ignore[attr-defined]
+            salvage(task, future.result())  # type: ignore[attr-defined]
+
+
 def _simulate_on_dask(
     scenario: Scenario, tasks: Sequence[GraphTask], cluster: str, batch_size: int, runs: Sequence[Run] | None,
+    salvage: Salvage = None,
 ) -> Iterator[GraphDraws]:
     try:
         from distributed import Client, LocalCluster
@@ -93,16 +115,21 @@ def _simulate_on_dask(
             local.close()
         raise DesignCalcError(f"--cluster {cluster}: cannot reach the dask scheduler ({exc})") from None
     futures = []
+    yielded = 0
     try:
         # The scenario travels once per worker (scattered), the tasks are tiny.
         shared = client.scatter(scenario, broadcast=True)
         # (Client.map has its own batch_size keyword, hence "columns".)
         futures = client.map(_run_on_dask, list(tasks), scenario=shared, runs=runs, columns=batch_size, pure=False)
         for future in futures:
-            yield future.result()
+            result = future.result()
+            yielded += 1
+            yield result
     finally:
-        for future in futures:
-            future.cancel()
+        for future in futures[yielded:]:
+            if not future.done():
+                future.cancel()
+        _salvage_finished(tasks, futures, yielded, salvage)
         client.close()
         if local is not None:
             local.close()
@@ -116,6 +143,7 @@ def simulate_graphs(
     batch_size: int = 16,
     runs: Sequence[Run] | None = None,
     cluster: str | None = None,
+    store: ResultStore | None = None,
 ) -> Iterator[GraphDraws]:
     """Yield ``simulate_graph`` for each task, in task order, on ``workers`` processes or a dask cluster.
 
@@ -124,7 +152,9 @@ def simulate_graphs(
     iterator is exhausted or closed.  ``cluster`` (a dask scheduler address
     such as ``tcp://10.0.0.5:8786``, or ``LOCAL_CLUSTER``) sends the tasks to
     dask.distributed instead (the ``designcalc[cluster]`` extra); ``workers``
-    is then ignored.  The numbers are the same on every backend.
+    is then ignored.  The numbers are the same on every backend.  With a
+    ``store`` (``designcalc.store.ResultStore``), stored graphs are read, not
+    computed, and each computed graph is stored as it arrives.
 
     Examples
     --------
@@ -138,9 +168,53 @@ def simulate_graphs(
     True
     """
     workers = check_workers(workers)
+    if store is None:
+        yield from _compute(scenario, tasks, workers, batch_size, runs, cluster, None)
+        return
+    yield from _through_store(scenario, tasks, workers, batch_size, runs, cluster, store)
+
+
+def _through_store(
+    scenario: Scenario, tasks: Sequence[GraphTask], workers: int, batch_size: int, runs: Sequence[Run] | None,
+    cluster: str | None, store: ResultStore,
+) -> Iterator[GraphDraws]:
+    from designcalc.store import stored_or_computed
+
+    runs = power_runs(scenario) if runs is None else runs
+    fingerprint, stored = stored_or_computed(store, scenario, runs, tasks)
+
+    def keep(task: GraphTask, draws: GraphDraws) -> None:
+        store.put(fingerprint, scenario, runs, task[0], task[1], draws)
+        store.computed += 1
+
+    missing = [task for task, have in zip(tasks, stored) if not have]
+    reused: list[GraphTask] = []
+    try:
+        with closing(_compute(scenario, missing, workers, batch_size, runs, cluster, keep)) as computed:
+            for task, have in zip(tasks, stored):
+                draws = store.fetch(fingerprint, *task) if have else None
+                if draws is not None:
+                    store.reused += 1
+                    reused.append(task)
+                elif have:  # stored but unreadable: compute it again here and replace it
+                    draws = simulate_graph(scenario, task[0], task[1], runs=runs, batch_size=batch_size)
+                    keep(task, draws)
+                else:
+                    draws = next(computed)
+                    keep(task, draws)
+                yield draws
+    finally:
+        store.touch(fingerprint, reused)
+
+
+def _compute(
+    scenario: Scenario, tasks: Sequence[GraphTask], workers: int, batch_size: int, runs: Sequence[Run] | None,
+    cluster: str | None, salvage: Salvage,
+) -> Iterator[GraphDraws]:
+    if not tasks:
+        return
     if cluster is not None:
-        if tasks:
-            yield from _simulate_on_dask(scenario, tasks, cluster, batch_size, runs)
+        yield from _simulate_on_dask(scenario, tasks, cluster, batch_size, runs, salvage)
         return
     if workers == 1 or len(tasks) <= 1:
         for point, g in tasks:
@@ -154,12 +228,17 @@ def simulate_graphs(
         initializer=_init_worker, initargs=(scenario, runs),
     )
     futures: list[Future[GraphDraws]] = []
+    yielded = 0
     try:
         futures = [pool.submit(_run_task, task, batch_size) for task in tasks]
         for future in futures:
-            yield future.result()
+            result = future.result()
+            yielded += 1
+            yield result
     finally:
-        # Normal end, Ctrl-C in the parent, or the caller stopped early: drop what has not started.
+        # Normal end, Ctrl-C in the parent, or the caller stopped early: drop what has not
+        # started, let the running graphs finish, and hand those to salvage (the store).
         for future in futures:
             future.cancel()
         pool.shutdown(wait=True, cancel_futures=True)
+        _salvage_finished(tasks, futures, yielded, salvage)

@@ -14,7 +14,7 @@ from __future__ import annotations
 import datetime as _dt
 import platform
 from dataclasses import asdict, dataclass, replace
-from typing import Callable, Sequence
+from typing import TYPE_CHECKING, Callable, Sequence
 
 import numpy as np
 import scipy as sp
@@ -31,6 +31,9 @@ from designcalc.engine import (
 )
 from designcalc.inference import Z95, critical_value, floored_power_se, reference_distribution
 from designcalc.scenario import Scenario
+
+if TYPE_CHECKING:
+    from designcalc.store import ResultStore
 
 __all__ = [
     "PowerRecord",
@@ -321,6 +324,7 @@ def simulate_power(
     on_point: Callable[[DesignPoint, Sequence[GraphDraws]], None] | None = None,
     workers: int = 1,
     cluster: str | None = None,
+    store: "ResultStore | None" = None,
 ) -> PowerResult:
     """Simulate the power of every planned estimator at every design point.
 
@@ -353,6 +357,11 @@ def simulate_power(
     cluster
         A dask scheduler address (or ``"local"``) to run the graphs on instead
         of local processes; same numbers (``designcalc.execution``).
+    store
+        A ``designcalc.store.ResultStore``: graphs already stored for this
+        scenario's numbers are read instead of simulated, and each simulated
+        graph is stored as it finishes, so a rerun after Ctrl-C or a crash
+        computes only what is missing.  Same numbers with or without it.
 
     Returns
     -------
@@ -403,7 +412,7 @@ def simulate_power(
         if not adaptive:
             # Every (point, graph) task at once, so the workers stay busy across design points.
             tasks = [(point, g) for point in points for g in range(G)]
-            with closing(simulate_graphs(scenario, tasks, workers=workers, batch_size=batch_size, cluster=cluster)) as stream:
+            with closing(simulate_graphs(scenario, tasks, workers=workers, batch_size=batch_size, cluster=cluster, store=store)) as stream:
                 for point in points:
                     draws: list[GraphDraws] = []
                     for g in range(G):
@@ -420,7 +429,7 @@ def simulate_power(
                 while True:
                     summary = None
                     batch = [(point, g) for g in range(len(draws), goal)]
-                    with closing(simulate_graphs(scenario, batch, workers=workers, batch_size=batch_size, cluster=cluster)) as stream:
+                    with closing(simulate_graphs(scenario, batch, workers=workers, batch_size=batch_size, cluster=cluster, store=store)) as stream:
                         for d in stream:
                             draws.append(d)
                             if len(draws) == goal:

@@ -33,7 +33,7 @@ import math
 import time
 from contextlib import closing
 from dataclasses import asdict, dataclass
-from typing import Callable, Sequence
+from typing import TYPE_CHECKING, Callable, Sequence
 
 import numpy as np
 import scipy.stats
@@ -53,6 +53,9 @@ from designcalc.execution import check_workers, simulate_graphs
 from designcalc.inference import Z95, critical_value, floored_power_se, probit, reference_distribution
 from designcalc.power import CAUTIONS, FlaggedRecord, ResultTable, clustered_mean_se, clustered_sd, provenance, reject, stack_run
 from designcalc.scenario import Scenario
+
+if TYPE_CHECKING:
+    from designcalc.store import ResultStore
 
 __all__ = ["SizePoint", "SizeRecord", "SizeResult", "required_sample_size", "MAX_ADJACENCY_ENTRIES"]
 
@@ -139,10 +142,14 @@ class _Summary:
 class _Sizes:
     """Simulations of the scenario's model at several sizes for one treatment probability."""
 
-    def __init__(self, scenario: Scenario, pi: float, batch_size: int, tick: Callable[[], None], workers: int = 1, cluster: str | None = None) -> None:
+    def __init__(
+        self, scenario: Scenario, pi: float, batch_size: int, tick: Callable[[], None], workers: int = 1,
+        cluster: str | None = None, store: "ResultStore | None" = None,
+    ) -> None:
         self.scenario = scenario
         self.workers = workers
         self.cluster = cluster
+        self.store = store
         self.pi = pi
         self.batch_size = batch_size
         self.tick = tick
@@ -157,7 +164,7 @@ class _Sizes:
         have = self.draws.setdefault(n, [])
         point = DesignPoint(n, self.pi)
         tasks = [(point, g) for g in range(len(have), graphs)]
-        with closing(simulate_graphs(self.scenario, tasks, workers=self.workers, batch_size=self.batch_size, runs=self.run, cluster=self.cluster)) as stream:
+        with closing(simulate_graphs(self.scenario, tasks, workers=self.workers, batch_size=self.batch_size, runs=self.run, cluster=self.cluster, store=self.store)) as stream:
             for draws in stream:
                 have.append(draws)
                 self.tick()
@@ -178,7 +185,7 @@ class _Sizes:
         point = DesignPoint(n, self.pi)
         draws = []
         tasks = [(point, g) for g in range(graphs)]
-        with closing(simulate_graphs(self.scenario, tasks, workers=self.workers, batch_size=self.batch_size, runs=run, cluster=self.cluster)) as stream:
+        with closing(simulate_graphs(self.scenario, tasks, workers=self.workers, batch_size=self.batch_size, runs=run, cluster=self.cluster, store=self.store)) as stream:
             for d in stream:
                 draws.append(d)
                 self.tick()
@@ -278,6 +285,7 @@ def required_sample_size(
     progress: Callable[[EngineProgress], None] | None = None,
     workers: int = 1,
     cluster: str | None = None,
+    store: "ResultStore | None" = None,
 ) -> SizeResult:
     """Units needed for the target power, per treatment probability and planned test (module docstring).
 
@@ -297,6 +305,9 @@ def required_sample_size(
         Local worker processes for the graphs of each simulated size (1: this
         process); the numbers are identical for any number.  ``cluster``: a
         dask scheduler address instead (``designcalc.execution``).
+    store
+        A ``designcalc.store.ResultStore`` that keeps every simulated graph,
+        so a rerun (or a report) reuses them; same numbers without it.
 
     Examples
     --------
@@ -331,7 +342,7 @@ def required_sample_size(
 
     try:
         for pi in scenario.design.treatment_probabilities:
-            sizes = _Sizes(scenario, pi, batch_size, tick, check_workers(workers), cluster)
+            sizes = _Sizes(scenario, pi, batch_size, tick, check_workers(workers), cluster, store)
             records.extend(_search(scenario, sizes, limit, precision, cap, warnings))
     except KeyboardInterrupt:
         partial = True

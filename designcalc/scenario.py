@@ -14,30 +14,37 @@ import difflib
 import hashlib
 import math
 import tomllib
-from dataclasses import dataclass, field
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any, Callable, Sequence
+from typing import Any
 
-from designcalc.covariates import Covariate, CovariateError, CovariateLoadings, covariate_loadings
+from designcalc.covariates import (
+    Covariate,
+    CovariateError,
+    CovariateLoadings,
+    covariate_loadings,
+)
 from designcalc.density import DensityRule
 from designcalc.edge_models import KERNEL_FAMILIES, BlockModel, EdgeModel, KernelModel
 from designcalc.errors import DesignCalcError, ScenarioError
 from designcalc.outcomes import SPILLOVER_SHAPES, OutcomeModel
 
 __all__ = [
-    "Scenario",
-    "Population",
+    "ADJUSTED_ESTIMATORS",
+    "ALTERNATIVES",
+    "DIRECT_ESTIMATORS",
+    "DIRECT_VARIANCES",
+    "REFERENCE_DISTRIBUTIONS",
+    "SPILLOVER_ESTIMATORS",
     "Design",
     "EstimatorPlan",
+    "ExecutionSettings",
+    "Population",
+    "Scenario",
     "SimulationSettings",
     "load_scenario",
     "parse_scenario",
-    "DIRECT_ESTIMATORS",
-    "DIRECT_VARIANCES",
-    "SPILLOVER_ESTIMATORS",
-    "ADJUSTED_ESTIMATORS",
-    "ALTERNATIVES",
-    "REFERENCE_DISTRIBUTIONS",
 ]
 
 DIRECT_ESTIMATORS = ("hajek", "horvitz_thompson", "lin")
@@ -113,6 +120,21 @@ class SimulationSettings:
 
 
 @dataclass(frozen=True)
+class ExecutionSettings:
+    """Where and how to run (``[execution]``); never changes a number.
+
+    ``store`` is a path (relative paths are relative to the scenario file's
+    folder once loaded from a file), ``False`` for no store, or ``None`` for
+    the default (``designcalc.store.default_store_path``).  Command-line
+    options win over these.
+    """
+
+    workers: int | None = None
+    cluster: str | None = None
+    store: str | bool | None = None
+
+
+@dataclass(frozen=True)
 class Scenario:
     """A validated scenario: everything the engine needs, nothing unchecked."""
 
@@ -126,6 +148,7 @@ class Scenario:
     estimators: EstimatorPlan
     simulation: SimulationSettings
     covariates: CovariateLoadings | None = None  # None: no baseline covariates
+    execution: ExecutionSettings = ExecutionSettings()
     source: str = "<scenario>"
     sha256: str = ""
     text: str = field(default="", repr=False)
@@ -284,7 +307,7 @@ class _Table:
             raise self.error(name, "lists the same name twice", received=value)
         return out
 
-    def table(self, name: str, known: Sequence[str], *, required: bool = True) -> "_Table | None":
+    def table(self, name: str, known: Sequence[str], *, required: bool = True) -> _Table | None:
         self.used.add(name)
         if name not in self.data:
             if required:
@@ -322,7 +345,8 @@ def _range_text(low: float | None, high: float | None, low_open: bool, high_open
 # ---------------------------------------------------------------------------
 # Section readers
 # ---------------------------------------------------------------------------
-_TOP_KEYS = ("scenario", "population", "network", "outcome", "covariates", "design", "estimators", "simulation")
+_TOP_KEYS = ("scenario", "population", "network", "outcome", "covariates", "design", "estimators", "simulation", "execution")
+_EXECUTION_KEYS = ("workers", "cluster", "store")
 _COVARIATE_KEYS = ("name", "r_squared", "through_type")
 _SCENARIO_KEYS = ("name", "description")
 _POPULATION_KEYS = ("units", "max_units")
@@ -563,6 +587,24 @@ def _read_simulation(top: _Table) -> SimulationSettings:
     return SimulationSettings(graphs, per_graph, seed, precision, max_graphs)
 
 
+def _read_execution(top: _Table) -> ExecutionSettings:
+    t = top.table("execution", _EXECUTION_KEYS, required=False)
+    if t is None:
+        return ExecutionSettings()
+    workers = t.number("workers", None, low=1, high=1024, integer=True)
+    cluster = t.text("cluster", None)
+    if cluster is not None and not cluster.strip():
+        raise t.error("cluster", "must be a dask scheduler address or \"local\"", allowed='"tcp://HOST:PORT" or "local"', received=cluster)
+    store = t.raw("store", None)
+    if store is True or (store is not None and not isinstance(store, (str, bool))) or (isinstance(store, str) and not store.strip()):
+        raise t.error(
+            "store", "must be a file path in quotes, or false for no results store",
+            allowed='"results.sqlite" (relative to the scenario file) or false', received=store,
+        )
+    t.finish()
+    return ExecutionSettings(workers, cluster, store)
+
+
 def parse_scenario(text: str, *, source: str = "<scenario>") -> Scenario:
     """Validate the TOML text of a scenario.
 
@@ -601,6 +643,7 @@ def parse_scenario(text: str, *, source: str = "<scenario>") -> Scenario:
     covariates = _read_covariates(top, outcome, network)
     estimators = _read_estimators(top, outcome, covariates is not None)
     simulation = _read_simulation(top)
+    execution = _read_execution(top)
     top.finish()
     for n in population.units:
         if density.target_mean_degree(n) >= n - 1:
@@ -619,6 +662,7 @@ def parse_scenario(text: str, *, source: str = "<scenario>") -> Scenario:
         estimators=estimators,
         simulation=simulation,
         covariates=covariates,
+        execution=execution,
         source=source,
         sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
         text=text,
@@ -648,4 +692,9 @@ def load_scenario(path: str | Path) -> Scenario:
         text = raw.decode("utf-8")
     except UnicodeDecodeError:
         raise ScenarioError("is not UTF-8 text", file=str(path), hint="save the scenario as plain UTF-8 text") from None
-    return parse_scenario(text, source=path.name)
+    scenario = parse_scenario(text, source=path.name)
+    store = scenario.execution.store
+    if isinstance(store, str) and not Path(store).expanduser().is_absolute():
+        # A project's store sits with its scenario, wherever the command is run from.
+        scenario = replace(scenario, execution=replace(scenario.execution, store=str(path.parent / store)))
+    return scenario

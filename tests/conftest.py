@@ -20,3 +20,16 @@ if _TESTS not in sys.path:
 settings.register_profile("ci", deadline=None, derandomize=True, suppress_health_check=[HealthCheck.too_slow])
 settings.register_profile("dev", deadline=None)
 settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "dev"))
+
+
+import pytest
+
+
+@pytest.fixture(autouse=True)
+def _own_results_store(tmp_path_factory, monkeypatch):
+    """Every test gets an empty results store of its own (commands and their subprocesses read $DESIGNCALC_STORE).
+
+    Tests never touch the user's ~/.cache, and a test that interrupts a run
+    is not defeated by graphs another test stored.
+    """
+    monkeypatch.setenv("DESIGNCALC_STORE", str(tmp_path_factory.mktemp("store") / "results.sqlite"))

@@ -28,7 +28,7 @@ def stdout_console() -> Console:
 
 
 def _register() -> None:
-    from designcalc.cli import check, compare, mde, power, report, size
+    from designcalc.cli import check, compare, mde, power, report, size, store
 
     check.register(app)
     power.register(app)
@@ -36,6 +36,7 @@ def _register() -> None:
     size.register(app)
     compare.register(app)
     report.register(app)
+    store.register(app)
 
 
 _register()

@@ -30,7 +30,7 @@ from designcalc.cli.output import (
     simulate_with_progress,
     write_figures,
 )
-from designcalc.execution import available_workers
+from designcalc.cli.running import NoStore, StorePath, execution
 from designcalc.power import PowerResult, simulate_power
 from designcalc.scenario import Scenario
 
@@ -90,16 +90,19 @@ def register(app: typer.Typer) -> None:
         figures: FiguresDir = None,
         workers: Workers = None,
         cluster: Cluster = None,
+        store: StorePath = None,
+        no_store: NoStore = False,
     ) -> None:
         """Simulate power, size and coverage of every planned estimator at every design point."""
         loaded = load_checked(scenario, output_format, treatment_probability)
-        solve = partial(
-            simulate_power, loaded, units=units, treatment_probabilities=treatment_probability, graphs=graphs,
-            assignments_per_graph=assignments, seed=seed, adaptive=adaptive,
-            workers=workers or available_workers(), cluster=cluster,
-        )
         check_figures_dir(figures)
-        result = simulate_with_progress(solve, known_total=True)
+        with execution(loaded, workers, cluster, store, no_store) as where:
+            solve = partial(
+                simulate_power, loaded, units=units, treatment_probabilities=treatment_probability, graphs=graphs,
+                assignments_per_graph=assignments, seed=seed, adaptive=adaptive,
+                workers=where.workers, cluster=where.cluster, store=where.store,
+            )
+            result = simulate_with_progress(solve, known_total=True)
         write_figures(figures, lambda: _figures(result, loaded))
         emit(result, output_format, table=render_table, csv_text=render_csv)
 

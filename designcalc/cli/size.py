@@ -10,14 +10,14 @@ import typer
 from rich.console import Console
 
 from designcalc.cli.output import (
-    Cluster,
-    Workers,
     Assignments,
+    Cluster,
     FiguresDir,
     OutputFormat,
     ScenarioFile,
     Seed,
     TreatmentProbabilities,
+    Workers,
     check_figures_dir,
     emit,
     flag_references,
@@ -35,7 +35,7 @@ from designcalc.cli.output import (
     span,
     write_figures,
 )
-from designcalc.execution import available_workers
+from designcalc.cli.running import NoStore, StorePath, execution
 from designcalc.sample_size import SizeRecord, SizeResult, required_sample_size
 from designcalc.scenario import Scenario
 
@@ -123,14 +123,11 @@ def register(app: typer.Typer) -> None:
         figures: FiguresDir = None,
         workers: Workers = None,
         cluster: Cluster = None,
+        store: StorePath = None,
+        no_store: NoStore = False,
     ) -> None:
         """Units needed for the target power, per treatment probability and planned test; no scaling law assumed."""
         loaded = load_checked(scenario, output_format, treatment_probability, precision=precision, max_graphs=max_graphs, graphs=graphs)
-        solve = partial(
-            required_sample_size, loaded, treatment_probabilities=treatment_probability, max_units=max_units, graphs=graphs,
-            assignments_per_graph=assignments, seed=seed, relative_precision=precision, max_graphs=max_graphs,
-            workers=workers or available_workers(), cluster=cluster,
-        )
         limit = max_units or loaded.population.search_limit
         requested, cap = precision_settings(loaded, precision, max_graphs, graphs)
 
@@ -138,7 +135,13 @@ def register(app: typer.Typer) -> None:
             render_table(res, console, scenario=loaded, limit=limit, precision=requested, max_graphs=cap)
 
         check_figures_dir(figures)
-        result = simulate_with_progress(solve, known_total=False)
+        with execution(loaded, workers, cluster, store, no_store) as where:
+            solve = partial(
+                required_sample_size, loaded, treatment_probabilities=treatment_probability, max_units=max_units, graphs=graphs,
+                assignments_per_graph=assignments, seed=seed, relative_precision=precision, max_graphs=max_graphs,
+                workers=where.workers, cluster=where.cluster, store=where.store,
+            )
+            result = simulate_with_progress(solve, known_total=False)
         write_figures(figures, lambda: _figures(result, loaded))
         emit(
             result, output_format, table=table, csv_text=render_csv,

@@ -64,6 +64,7 @@ from designcalc.power import (
 )
 from designcalc.sample_size import SizeResult, required_sample_size
 from designcalc.scenario import Scenario
+from designcalc.store import ResultStore
 
 __all__ = ["CostRow", "ExampleNetwork", "FamilyPowerRow", "MultipleTesting", "Report", "ReportSettings", "build_report"]
 
@@ -362,6 +363,8 @@ def build_report(
     settings: ReportSettings | None = None,
     *,
     progress: Callable[[str, EngineProgress], None] | None = None,
+    cluster: str | None = None,
+    store: "ResultStore | None" = None,
 ) -> Report:
     """Run every calculation a report shows and return it as plain data.
 
@@ -374,6 +377,10 @@ def build_report(
     progress
         Called with the phase name ("power", "minimum detectable effects",
         "sample size", "treatment probabilities") and the engine's progress.
+    cluster, store
+        A dask scheduler address for the power table and the size search,
+        and a ``designcalc.store.ResultStore`` whose stored graphs they reuse
+        (and extend); neither changes a number (``simulate_power``).
 
     Returns
     -------
@@ -413,7 +420,9 @@ def build_report(
     G = scenario.simulation.graphs
     search_graphs = settings.search_graphs or max(8, G // 2)
     compare_units = settings.compare_units or units[(len(units) - 1) // 2]
-    power = simulate_power(scenario, batch_size=settings.batch_size, progress=phase("power"), on_point=capture, workers=settings.workers)
+    power = simulate_power(scenario, batch_size=settings.batch_size, progress=phase("power"), on_point=capture, workers=settings.workers,
+        cluster=cluster, store=store,
+    )
     _refuse_partial(power.partial)
     mde = minimum_detectable_effects(
         solving, relative_precision=settings.precision, batch_size=settings.batch_size, progress=phase("minimum detectable effects"),
@@ -422,6 +431,7 @@ def build_report(
     size = required_sample_size(
         solving, graphs=search_graphs, relative_precision=settings.precision, max_units=settings.max_units,
         batch_size=settings.batch_size, progress=phase("sample size"), workers=settings.workers,
+        cluster=cluster, store=store,
     )
     _refuse_partial(size.partial)
     compare = compare_treatment_probabilities(
