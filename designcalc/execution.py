@@ -39,7 +39,7 @@ from designcalc.scenario import Scenario
 if TYPE_CHECKING:
     from designcalc.store import ResultStore
 
-__all__ = ["LOCAL_CLUSTER", "GraphTask", "available_workers", "check_workers", "simulate_graphs"]
+__all__ = ["LOCAL_CLUSTER", "Cluster", "ClusterConnection", "GraphTask", "available_workers", "check_workers", "simulate_graphs"]
 
 #: ``cluster=LOCAL_CLUSTER`` starts a dask ``LocalCluster`` on this machine for the call (tests, trying it out).
 LOCAL_CLUSTER = "local"
@@ -93,34 +93,74 @@ def _salvage_finished(tasks: Sequence[GraphTask], futures: Sequence[object], sta
             salvage(task, future.result())  # type: ignore[attr-defined]
 
 
+class ClusterConnection:
+    """One dask client for many calls: a size search asks for graphs dozens of times.
+
+    Connecting (or starting a ``LocalCluster``) takes seconds; with a
+    connection opened once (``with ClusterConnection(address) as c``) and
+    passed as ``cluster=c``, each call only submits its tasks, and each
+    scenario is scattered to the workers once.
+    """
+
+    def __init__(self, address: str) -> None:
+        try:
+            from distributed import Client, LocalCluster
+        except ImportError:
+            raise DesignCalcError(
+                "--cluster needs dask.distributed, which is not installed; install the extra: pip install 'designcalc[cluster]'"
+            ) from None
+        self.address = address
+        self._local = None
+        try:
+            if address == LOCAL_CLUSTER:
+                self._local = LocalCluster(n_workers=available_workers(), threads_per_worker=1, processes=True, dashboard_address=None)
+                self.client = Client(self._local)
+            else:
+                self.client = Client(address, timeout=10)
+        except OSError as exc:
+            if self._local is not None:
+                self._local.close()
+            raise DesignCalcError(f"--cluster {address}: cannot reach the dask scheduler ({exc})") from None
+        # id -> (scenario, its future); the scenario is kept so that its id is never reused.
+        self._scattered: dict[int, tuple[Scenario, object]] = {}
+
+    def scattered(self, scenario: Scenario) -> object:
+        """The scenario on every worker (sent once per connection)."""
+        if id(scenario) not in self._scattered:
+            self._scattered[id(scenario)] = (scenario, self.client.scatter(scenario, broadcast=True))
+        return self._scattered[id(scenario)][1]
+
+    def close(self) -> None:
+        self._scattered.clear()
+        self.client.close()
+        if self._local is not None:
+            self._local.close()
+
+    def __enter__(self) -> ClusterConnection:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+
+Cluster = str | ClusterConnection
+
+
 def _simulate_on_dask(
-    scenario: Scenario, tasks: Sequence[GraphTask], cluster: str, batch_size: int, runs: Sequence[Run] | None,
+    scenario: Scenario, tasks: Sequence[GraphTask], cluster: Cluster, batch_size: int, runs: Sequence[Run] | None,
     salvage: Salvage = None,
 ) -> Iterator[GraphDraws]:
-    try:
-        from distributed import Client, LocalCluster
-    except ImportError:
-        raise DesignCalcError(
-            "--cluster needs dask.distributed, which is not installed; install the extra: pip install 'designcalc[cluster]'"
-        ) from None
-    local = None
-    try:
-        if cluster == LOCAL_CLUSTER:
-            local = LocalCluster(n_workers=available_workers(), threads_per_worker=1, processes=True, dashboard_address=None)
-            client = Client(local)
-        else:
-            client = Client(cluster, timeout=10)
-    except OSError as exc:
-        if local is not None:
-            local.close()
-        raise DesignCalcError(f"--cluster {cluster}: cannot reach the dask scheduler ({exc})") from None
+    if isinstance(cluster, str):
+        with ClusterConnection(cluster) as connection:
+            yield from _simulate_on_dask(scenario, tasks, connection, batch_size, runs, salvage)
+        return
     futures = []
     yielded = 0
     try:
-        # The scenario travels once per worker (scattered), the tasks are tiny.
-        shared = client.scatter(scenario, broadcast=True)
         # (Client.map has its own batch_size keyword, hence "columns".)
-        futures = client.map(_run_on_dask, list(tasks), scenario=shared, runs=runs, columns=batch_size, pure=False)
+        futures = cluster.client.map(
+            _run_on_dask, list(tasks), scenario=cluster.scattered(scenario), runs=runs, columns=batch_size, pure=False,
+        )
         for future in futures:
             result = future.result()
             yielded += 1
@@ -130,9 +170,6 @@ def _simulate_on_dask(
             if not future.done():
                 future.cancel()
         _salvage_finished(tasks, futures, yielded, salvage)
-        client.close()
-        if local is not None:
-            local.close()
 
 
 def simulate_graphs(
@@ -142,7 +179,7 @@ def simulate_graphs(
     workers: int = 1,
     batch_size: int = 16,
     runs: Sequence[Run] | None = None,
-    cluster: str | None = None,
+    cluster: Cluster | None = None,
     store: ResultStore | None = None,
 ) -> Iterator[GraphDraws]:
     """Yield ``simulate_graph`` for each task, in task order, on ``workers`` processes or a dask cluster.
@@ -150,7 +187,8 @@ def simulate_graphs(
     ``workers=1`` runs in this process (for debugging and small jobs).  With
     more, a local process pool is started for this call and closed when the
     iterator is exhausted or closed.  ``cluster`` (a dask scheduler address
-    such as ``tcp://10.0.0.5:8786``, or ``LOCAL_CLUSTER``) sends the tasks to
+    such as ``tcp://10.0.0.5:8786``, ``LOCAL_CLUSTER``, or a
+    ``ClusterConnection`` to reuse across calls) sends the tasks to
     dask.distributed instead (the ``designcalc[cluster]`` extra); ``workers``
     is then ignored.  The numbers are the same on every backend.  With a
     ``store`` (``designcalc.store.ResultStore``), stored graphs are read, not
@@ -176,7 +214,7 @@ def simulate_graphs(
 
 def _through_store(
     scenario: Scenario, tasks: Sequence[GraphTask], workers: int, batch_size: int, runs: Sequence[Run] | None,
-    cluster: str | None, store: ResultStore,
+    cluster: Cluster | None, store: ResultStore,
 ) -> Iterator[GraphDraws]:
     from designcalc.store import stored_or_computed
 
@@ -209,7 +247,7 @@ def _through_store(
 
 def _compute(
     scenario: Scenario, tasks: Sequence[GraphTask], workers: int, batch_size: int, runs: Sequence[Run] | None,
-    cluster: str | None, salvage: Salvage,
+    cluster: Cluster | None, salvage: Salvage,
 ) -> Iterator[GraphDraws]:
     if not tasks:
         return

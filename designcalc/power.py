@@ -33,6 +33,7 @@ from designcalc.inference import Z95, critical_value, floored_power_se, referenc
 from designcalc.scenario import Scenario
 
 if TYPE_CHECKING:
+    from designcalc.execution import Cluster
     from designcalc.store import ResultStore
 
 __all__ = [
@@ -323,7 +324,7 @@ def simulate_power(
     relative_precision: float | None = None,
     on_point: Callable[[DesignPoint, Sequence[GraphDraws]], None] | None = None,
     workers: int = 1,
-    cluster: str | None = None,
+    cluster: "Cluster | None" = None,
     store: "ResultStore | None" = None,
 ) -> PowerResult:
     """Simulate the power of every planned estimator at every design point.
@@ -355,8 +356,9 @@ def simulate_power(
         Local worker processes (1: this process).  A speed knob only: the
         numbers are identical for any number (``designcalc.execution``).
     cluster
-        A dask scheduler address (or ``"local"``) to run the graphs on instead
-        of local processes; same numbers (``designcalc.execution``).
+        A dask scheduler address (or ``"local"``, or an open
+        ``execution.ClusterConnection``) to run the graphs on instead of local
+        processes; same numbers (``designcalc.execution``).
     store
         A ``designcalc.store.ResultStore``: graphs already stored for this
         scenario's numbers are read instead of simulated, and each simulated

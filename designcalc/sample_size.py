@@ -49,7 +49,7 @@ from designcalc.engine import (
     null_label,
     planned_keys,
 )
-from designcalc.execution import check_workers, simulate_graphs
+from designcalc.execution import Cluster, check_workers, simulate_graphs
 from designcalc.inference import Z95, critical_value, floored_power_se, probit, reference_distribution
 from designcalc.power import CAUTIONS, FlaggedRecord, ResultTable, clustered_mean_se, clustered_sd, provenance, reject, stack_run
 from designcalc.scenario import Scenario
@@ -144,7 +144,7 @@ class _Sizes:
 
     def __init__(
         self, scenario: Scenario, pi: float, batch_size: int, tick: Callable[[], None], workers: int = 1,
-        cluster: str | None = None, store: "ResultStore | None" = None,
+        cluster: Cluster | None = None, store: "ResultStore | None" = None,
     ) -> None:
         self.scenario = scenario
         self.workers = workers
@@ -284,7 +284,7 @@ def required_sample_size(
     batch_size: int = 16,
     progress: Callable[[EngineProgress], None] | None = None,
     workers: int = 1,
-    cluster: str | None = None,
+    cluster: Cluster | None = None,
     store: "ResultStore | None" = None,
 ) -> SizeResult:
     """Units needed for the target power, per treatment probability and planned test (module docstring).

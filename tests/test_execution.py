@@ -112,3 +112,21 @@ def test_an_unreachable_cluster_is_a_user_error():
     )
     assert run.returncode == 2, run.stderr
     assert "--cluster tcp://127.0.0.1:9: cannot reach the dask scheduler" in run.stderr and "Traceback" not in run.stderr
+
+
+def test_one_cluster_connection_serves_a_whole_size_search():
+    """A size search on one open ClusterConnection (as the commands use it) equals the local search; the scenario is sent once."""
+    pytest.importorskip("distributed", reason="dask.distributed not installed")
+    from dataclasses import replace
+
+    from designcalc.execution import ClusterConnection
+    from designcalc.sample_size import required_sample_size
+
+    s = load_scenario(DEMO)
+    s = replace(s, estimators=replace(s.estimators, direct=("hajek",), direct_variance=("neyman",), spillover=("pc_balancing",)))
+    settings = dict(treatment_probabilities=[0.5], graphs=8, assignments_per_graph=4, relative_precision=0.3, max_units=1500)
+    local = required_sample_size(s, workers=1, **settings)
+    with ClusterConnection("local") as connection:
+        on_dask = required_sample_size(s, cluster=connection, **settings)
+        assert len(connection._scattered) == 1  # one scenario, scattered once for every call of the search
+    assert without_time(local) == without_time(on_dask)

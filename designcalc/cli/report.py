@@ -24,6 +24,7 @@ from designcalc.cli.output import (
 )
 from designcalc.cli.running import NoStore, StorePath, execution
 from designcalc.engine import EngineProgress
+from designcalc.execution import ClusterConnection
 from designcalc.report import ReportSettings, build_report, write_report
 from designcalc.report.collect import Report
 from designcalc.report.files import check_target
@@ -74,7 +75,7 @@ def register(app: typer.Typer) -> None:
             console.print(f"caution: {c}", soft_wrap=True)
 
 
-def _build(loaded: Scenario, settings: ReportSettings, console: Console, *, cluster: str | None, store: ResultStore | None) -> Report:
+def _build(loaded: Scenario, settings: ReportSettings, console: Console, *, cluster: ClusterConnection | None, store: ResultStore | None) -> Report:
     """Compute the report under a spinner (phase and graph count) on stderr."""
     columns = (SpinnerColumn(), TextColumn("{task.description}:"), TextColumn("{task.completed:.0f} graphs"), TextColumn("elapsed"), TimeElapsedColumn())
     with Progress(*columns, console=console, transient=True, disable=not console.is_terminal) as bar:

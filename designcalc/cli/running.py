@@ -16,7 +16,7 @@ from typing import Annotated
 import typer
 
 from designcalc.errors import DesignCalcError
-from designcalc.execution import available_workers
+from designcalc.execution import ClusterConnection, available_workers
 from designcalc.scenario import Scenario
 from designcalc.store import ResultStore, default_store_path
 
@@ -38,13 +38,13 @@ class Execution:
     """What a solver call needs to know about where it runs."""
 
     workers: int
-    cluster: str | None
+    cluster: ClusterConnection | None
     store: ResultStore | None
 
 
 @contextmanager
 def execution(scenario: Scenario, workers: int | None, cluster: str | None, store: Path | None, no_store: bool) -> Iterator[Execution]:
-    """Resolve the execution settings, open the store, and say on stderr what the store saved.
+    """Resolve the execution settings, connect to the cluster, open the store; at the end say what the store saved.
 
     A store named by ``--store`` or the scenario must open (or the command
     stops with exit 2); the per-user default is a convenience, so when it
@@ -65,9 +65,15 @@ def execution(scenario: Scenario, workers: int | None, cluster: str | None, stor
                 stderr_console().print(f"warning: {exc}; running without a results store", soft_wrap=True)
         elif named is not False:
             opened = ResultStore(Path(str(named)))
+    connection = None
     try:
-        yield Execution(workers or settings.workers or available_workers(), cluster or settings.cluster, opened)
+        address = cluster or settings.cluster
+        # Connected once for the whole command: a size search calls the cluster many times.
+        connection = ClusterConnection(address) if address else None
+        yield Execution(workers or settings.workers or available_workers(), connection, opened)
     finally:
+        if connection is not None:
+            connection.close()
         if opened is not None:
             if opened.reused or opened.computed:
                 stderr_console().print(

@@ -64,6 +64,7 @@ from designcalc.power import (
 )
 from designcalc.sample_size import SizeResult, required_sample_size
 from designcalc.scenario import Scenario
+from designcalc.execution import Cluster
 from designcalc.store import ResultStore
 
 __all__ = ["CostRow", "ExampleNetwork", "FamilyPowerRow", "MultipleTesting", "Report", "ReportSettings", "build_report"]
@@ -363,7 +364,7 @@ def build_report(
     settings: ReportSettings | None = None,
     *,
     progress: Callable[[str, EngineProgress], None] | None = None,
-    cluster: str | None = None,
+    cluster: Cluster | None = None,
     store: "ResultStore | None" = None,
 ) -> Report:
     """Run every calculation a report shows and return it as plain data.
