@@ -47,6 +47,7 @@ from designcalc.errors import DesignCalcError
 
 if TYPE_CHECKING:
     from designcalc.compare import CompareRow
+    from designcalc.fit import GoodnessOfFit
     from designcalc.mde import MdeRecord
     from designcalc.power import PowerRecord
     from designcalc.sample_size import SizeRecord
@@ -56,6 +57,7 @@ _SIMULATED = "simulated"  # status of curves built from a power table: nothing w
 __all__ = [
     "PALETTE",
     "SamplingSample",
+    "fit_check_figure",
     "mde_probability_figure",
     "mde_units_figure",
     "network_figure",
@@ -1064,3 +1066,113 @@ def _finite(value: object) -> bool:
         return math.isfinite(float(value))  # type: ignore[arg-type]
     except (TypeError, ValueError):
         return False
+
+
+# ------------------------------------------------------------ goodness of fit
+
+
+def fit_check_figure(check: GoodnessOfFit, *, title: str = "") -> Figure:
+    """Observed network beside networks simulated from its fitted block model (``designcalc fit``).
+
+    Parameters
+    ----------
+    check
+        The goodness-of-fit check (:func:`designcalc.fit.goodness_of_fit`).
+    title
+        The figure's title (optional).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        Four panels: the degree distribution (observed share of nodes at
+        each degree; simulated mean with the range of the middle 95% of
+        graphs), then transitivity, share of isolates and mean two-hop
+        neighbourhood size (each simulated graph a dot, the simulated mean
+        ± 1.96 SD a bar, the observed value a diamond).
+
+    Raises
+    ------
+    DesignCalcError
+        If ``check`` is not a goodness-of-fit result.
+
+    Notes
+    -----
+    The band and the bars show the spread of the statistic across graphs
+    drawn from the fit (what a network from the fitted model looks like),
+    not the Monte Carlo error of the simulated mean.  Non-finite values are
+    skipped.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from designcalc.graphs import sample_block_graph
+    >>> from designcalc.fit import fit_block_model, goodness_of_fit
+    >>> a = sample_block_graph([60, 40], np.array([[0.3, 0.02], [0.02, 0.3]]), rng=np.random.default_rng(3))
+    >>> fig = fit_check_figure(goodness_of_fit(a, fit_block_model(a, seed=1), graphs=5, seed=2))
+    >>> [ax.get_title() for ax in fig.axes]
+    ['degree distribution', 'transitivity', 'isolates', 'two-hop reach']
+    """
+    from matplotlib.ticker import MaxNLocator
+
+    for attribute in ("checks", "observed_degrees", "simulated_degree_counts", "n_graphs"):
+        if not hasattr(check, attribute):
+            raise DesignCalcError(f"`check` must be a GoodnessOfFit result; got {type(check).__name__}")
+    by_name = {c.name: c for c in check.checks}
+    # (statistic, panel title, axis label): two-line labels fit the narrow panels.
+    panels = (
+        ("transitivity", "transitivity", "share of connected\ntriples closed"),
+        ("share_isolated", "isolates", "share of nodes\nwith no ties"),
+        ("mean_two_hop", "two-hop reach", "mean nodes within\ntwo steps"),
+    )
+    with mpl.rc_context(_STYLE):
+        fig = Figure(figsize=(_PANEL_SIZE[0], 3.1), layout="constrained")
+        axes = fig.subplots(1, 4, gridspec_kw={"width_ratios": [2.4, 1, 1, 1]})
+        ax = axes[0]
+        counts = np.asarray(check.simulated_degree_counts, dtype=float)
+        observed = np.asarray(check.observed_degrees, dtype=np.int64)
+        if counts.size and observed.size:
+            shares = counts / counts.sum(axis=1, keepdims=True)
+            degree = np.arange(shares.shape[1])
+            low, high = np.percentile(shares, [2.5, 97.5], axis=0)
+            ax.fill_between(degree, low, high, step="mid", color=PALETTE[0], alpha=0.25, linewidth=0)
+            ax.step(degree, shares.mean(axis=0), where="mid", color=PALETTE[0], linewidth=1.2)
+            observed_share = np.bincount(observed, minlength=degree.size) / observed.size
+            ax.plot(np.arange(observed_share.size), observed_share, linestyle="none", marker="D",
+                    markersize=3.2, color=PALETTE[1])
+        else:
+            _say_empty(ax, "no degrees")
+        ax.set_xlabel("degree (ties per node)")
+        ax.set_ylabel("share of nodes")
+        ax.set_title("degree distribution")
+        for ax, (name, panel_title, label) in zip(axes[1:], panels):
+            stat = by_name.get(name)
+            values = np.asarray(stat.simulated if stat is not None else (), dtype=float)
+            values = values[np.isfinite(values)]
+            if stat is None or (values.size == 0 and not _finite(stat.observed)):
+                _say_empty(ax, "not computed")
+                ax.set_xlabel(label)
+                continue
+            if values.size:
+                # Dots spread evenly over the panel's height, in the simulation's order: no random jitter.
+                heights = np.linspace(-0.25, 0.25, values.size) if values.size > 1 else np.zeros(1)
+                ax.plot(values, heights, linestyle="none", marker="o", markersize=2.5, color=PALETTE[0], alpha=0.6)
+                if values.size > 1:
+                    mean, sd = float(values.mean()), float(values.std(ddof=1))
+                    ax.errorbar([mean], [-0.45], xerr=[[_Z95 * sd], [_Z95 * sd]], fmt="o", color=PALETTE[0],
+                                markersize=4, capsize=2, linewidth=1.0)
+            if _finite(stat.observed):
+                ax.plot([float(stat.observed)], [0.45], linestyle="none", marker="D", markersize=5, color=PALETTE[1])
+            ax.set_ylim(-0.7, 0.7)
+            ax.set_yticks([])
+            ax.xaxis.set_major_locator(MaxNLocator(3))
+            ax.set_xlabel(label)
+            ax.set_title(panel_title)
+        if title:
+            fig.suptitle(title)
+        handles = [
+            Line2D([], [], linestyle="none", marker="D", markersize=4, color=PALETTE[1], label="observed"),
+            Line2D([], [], color=PALETTE[0], marker="o", markersize=3, label=f"simulated from the fit ({check.n_graphs} graphs)"),
+            Patch(facecolor=PALETTE[0], alpha=0.25, label="middle 95% of simulated graphs / mean ± 1.96 SD"),
+        ]
+        _figure_legend(fig, handles)
+    return fig

@@ -28,7 +28,7 @@ def stdout_console() -> Console:
 
 
 def _register() -> None:
-    from designcalc.cli import check, compare, mde, power, report, size, store
+    from designcalc.cli import check, compare, fit, mde, power, report, size, store
 
     check.register(app)
     power.register(app)
@@ -37,6 +37,7 @@ def _register() -> None:
     compare.register(app)
     report.register(app)
     store.register(app)
+    fit.register(app)
 
 
 _register()
