@@ -173,6 +173,11 @@ class KernelModel:
     _raw: Callable[[np.ndarray, np.ndarray], np.ndarray] = field(init=False, repr=False, compare=False)
     _scale: float = field(init=False, repr=False, compare=False)
 
+    def __reduce__(self) -> tuple[type, tuple[object, ...]]:
+        # The compiled kernel (_raw) is a closure, which pickle cannot send; send the stated
+        # fields and rebuild it, so spawn-started worker pools and plain pickle work.
+        return (KernelModel, (self.family, self.degree_ratio, self.length_scale, self.floor, self.amplitudes, self.expression))
+
     def __post_init__(self) -> None:
         if self.family not in KERNEL_FAMILIES:
             raise ModelError(f"unknown kernel family {self.family!r}; choose one of {sorted(KERNEL_FAMILIES)}")

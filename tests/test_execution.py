@@ -130,3 +130,28 @@ def test_one_cluster_connection_serves_a_whole_size_search():
         on_dask = required_sample_size(s, cluster=connection, **settings)
         assert len(connection._scattered) == 1  # one scenario, scattered once for every call of the search
     assert without_time(local) == without_time(on_dask)
+
+
+def test_kernel_scenarios_pickle_so_spawned_workers_get_the_same_numbers():
+    """Plain pickle carries a kernel scenario (its compiled kernel is rebuilt), so a spawn-started pool, as on
+    platforms without fork, simulates exactly the graphs of this process; expression kernels included."""
+    import multiprocessing
+    import pickle
+    from concurrent.futures import ProcessPoolExecutor
+
+    from designcalc.engine import DesignPoint, simulate_graph
+    from designcalc.scenario import parse_scenario
+
+    text = (ROOT / "scenarios" / "marrow_valley_hygiene.toml").read_text()
+    expression = text.replace('kernel = "distance_decay"', 'kernel = "expression"\nexpression = "0.05 + exp(-abs(u - v) / 0.08)"', 1)
+    expression = "\n".join(line for line in expression.splitlines() if not line.startswith(("length_scale", "floor")))
+    scenarios = (load_scenario(ROOT / "scenarios" / "marrow_valley_hygiene.toml"), parse_scenario(expression, source="expression.toml"))
+    assert [s.network.family for s in scenarios] == ["distance_decay", "expression"]
+    for s in scenarios:
+        copy = pickle.loads(pickle.dumps(s))
+        assert copy == s
+        here = simulate_graph(s, DesignPoint(200, 0.4), 1)
+        with ProcessPoolExecutor(1, mp_context=multiprocessing.get_context("spawn")) as pool:
+            there = pool.submit(simulate_graph, s, DesignPoint(200, 0.4), 1).result()
+        for key in here.estimates:
+            assert (here.estimates[key] == there.estimates[key]).all(), key
