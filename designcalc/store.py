@@ -275,6 +275,7 @@ class ResultStore:
         self.path = Path(path)
         self.reused = 0
         self.computed = 0
+        self.write_error: str | None = None
         self._known_sets: set[str] = set()
         try:
             self.path.parent.mkdir(parents=True, exist_ok=True)
@@ -335,10 +336,13 @@ class ResultStore:
 
     def fetch(self, fingerprint: str, point: DesignPoint, graph_index: int) -> GraphDraws | None:
         """The stored block, or None if it is missing or damaged (then it is simply computed again)."""
-        row = self._db.execute(
-            "SELECT payload FROM blocks WHERE fingerprint = ? AND units = ? AND probability_key = ? AND graph_index = ?",
-            (fingerprint, point.units, _probability_key(point.treatment_probability), graph_index),
-        ).fetchone()
+        try:
+            row = self._db.execute(
+                "SELECT payload FROM blocks WHERE fingerprint = ? AND units = ? AND probability_key = ? AND graph_index = ?",
+                (fingerprint, point.units, _probability_key(point.treatment_probability), graph_index),
+            ).fetchone()
+        except sqlite3.Error:  # an unreadable page: compute the graph again
+            return None
         if row is None:
             return None
         try:
@@ -347,9 +351,26 @@ class ResultStore:
             return None
 
     def put(self, fingerprint: str, scenario: Scenario, runs: Sequence[Run], point: DesignPoint, graph_index: int, draws: GraphDraws) -> None:
-        """Write one block in its own transaction (replacing a damaged one)."""
+        """Write one block in its own transaction (replacing a damaged one).
+
+        A store that cannot be written (disk full, read-only file) must not
+        stop a run or lose its numbers: the first failure is kept in
+        ``write_error``, and later blocks are not attempted.
+        """
+        if self.write_error is not None:
+            return
         payload = encode_draws(draws)
         now = _now()
+        try:
+            self._write_block(fingerprint, scenario, runs, point, graph_index, payload, now)
+        except sqlite3.Error as exc:
+            self.write_error = f"results store {self.path}: could not store a graph ({exc}); the run goes on without storing"
+            return
+        self._known_sets.add(fingerprint)
+
+    def _write_block(
+        self, fingerprint: str, scenario: Scenario, runs: Sequence[Run], point: DesignPoint, graph_index: int, payload: bytes, now: str,
+    ) -> None:
         with self._transaction():
             if fingerprint not in self._known_sets:
                 self._db.execute(
@@ -363,16 +384,19 @@ class ResultStore:
                 "INSERT OR REPLACE INTO blocks VALUES (?, ?, ?, ?, ?, ?, ?)",
                 (fingerprint, point.units, _probability_key(point.treatment_probability), graph_index, payload, now, now),
             )
-        self._known_sets.add(fingerprint)
 
     def touch(self, fingerprint: str, blocks: Iterable[tuple[DesignPoint, int]]) -> None:
         """Mark reused blocks as used now (``prune --unused-days`` keeps what is still in use)."""
         rows = [(_now(), fingerprint, p.units, _probability_key(p.treatment_probability), g) for p, g in blocks]
-        if rows:
+        if not rows or self.write_error is not None:
+            return
+        try:
             with self._transaction():
                 self._db.executemany(
                     "UPDATE blocks SET last_used = ? WHERE fingerprint = ? AND units = ? AND probability_key = ? AND graph_index = ?", rows
                 )
+        except sqlite3.Error as exc:
+            self.write_error = f"results store {self.path}: could not record the use of stored graphs ({exc})"
 
     # -- listing, export, pruning ----------------------------------------------------
     def sets(self) -> list[StoredSet]:

@@ -376,3 +376,21 @@ def test_the_default_runs_use_the_per_test_store():
     run = _designcalc("power", str(DEMO), "-n", "200", "-p", "0.5", "--graphs", "2", "--assignments", "3", "--format", "json")
     assert run.returncode == 0 and path.exists() and str(path) in run.stderr
     assert power_runs(load_scenario(DEMO))  # the set stored is the power table's
+
+
+def test_a_store_that_cannot_be_written_does_not_stop_the_run(tmp_path, monkeypatch):
+    """Disk full (simulated): the run finishes with the same numbers, the failure is kept for the warning, nothing half-written."""
+    s = load_scenario(DEMO)
+    calls = []
+
+    def full(*args, **kwargs):
+        calls.append(args)
+        raise sqlite3.OperationalError("database or disk is full")
+
+    with ResultStore(tmp_path / "r.sqlite") as store:
+        monkeypatch.setattr(store, "_write_block", full)
+        result = simulate_power(s, store=store, **SMALL)
+        assert store.computed == 6 and len(calls) == 1  # after the first failure no further write is tried
+        assert "database or disk is full" in store.write_error
+        assert store.sets() == []
+    assert without_time(result) == without_time(simulate_power(s, **SMALL))

@@ -75,9 +75,12 @@ def execution(scenario: Scenario, workers: int | None, cluster: str | None, stor
         if connection is not None:
             connection.close()
         if opened is not None:
+            if opened.write_error is not None:
+                stderr_console().print(f"warning: {opened.write_error}", soft_wrap=True)
             if opened.reused or opened.computed:
                 stderr_console().print(
-                    f"results store {opened.path}: {opened.reused} graphs reused, {opened.computed} computed and stored",
+                    f"results store {opened.path}: {opened.reused} graphs reused, {opened.computed} computed"
+                    + (" and stored" if opened.write_error is None else " (not all stored)"),
                     soft_wrap=True,
                 )
             opened.close()
