@@ -7,8 +7,8 @@ randomness.  A block is keyed by
 * the **numbers fingerprint**: a SHA-256 over everything that can change
   what ``engine.simulate_graph`` returns for a given graph (network, density
   rule, outcome model, covariates, estimator plan, seed, assignments per
-  graph, the runs' outcome models and keys), the designcalc version and
-  ``engine.STREAM_LAYOUT_VERSION``; but *not* the planned sizes, treatment
+  graph, the runs' outcome models and keys), the designcalc, numpy and
+  scipy versions and ``engine.STREAM_LAYOUT_VERSION``; but *not* the planned sizes, treatment
   probabilities, number of graphs, significance level, target power, names
   or execution settings, which only choose which blocks are needed or how
   they are summarised;
@@ -39,6 +39,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+import scipy
 
 from designcalc._version import __version__
 from designcalc.engine import (
@@ -78,6 +79,7 @@ CREATE TABLE IF NOT EXISTS result_sets (
     scenario_sha256 TEXT NOT NULL,
     runs TEXT NOT NULL,
     tool_version TEXT NOT NULL,
+    library_versions TEXT NOT NULL,
     stream_layout_version INTEGER NOT NULL,
     created TEXT NOT NULL
 );
@@ -136,6 +138,9 @@ def numbers_fingerprint(scenario: Scenario, runs: Sequence[Run] | None = None) -
     runs = power_runs(scenario) if runs is None else runs
     content = {
         "tool_version": __version__,
+        # numpy's distributions and scipy's eigen-solvers may change results between releases.
+        "numpy": np.__version__,
+        "scipy": scipy.__version__,
         "stream_layout_version": STREAM_LAYOUT_VERSION,
         "schema_version": SCHEMA_VERSION,
         "network": _canonical(scenario.network),
@@ -210,6 +215,10 @@ def decode_draws(payload: bytes) -> GraphDraws:
         raise ValueError(f"damaged stored block ({exc})") from None
 
 
+def _library_versions() -> str:
+    return json.dumps({"numpy": np.__version__, "scipy": scipy.__version__}, sort_keys=True)
+
+
 def _probability_key(pi: float) -> int:
     return int(round(pi * _PROBABILITY_KEY_SCALE))
 
@@ -228,6 +237,7 @@ class StoredSet:
     scenario_sha256: str
     purpose: str
     tool_version: str
+    library_versions: str
     stream_layout_version: int
     design_points: int
     blocks: int
@@ -237,8 +247,11 @@ class StoredSet:
 
     @property
     def reusable(self) -> bool:
-        """Written by this designcalc version and stream layout (others can never be matched again)."""
-        return self.tool_version == __version__ and self.stream_layout_version == STREAM_LAYOUT_VERSION
+        """Written by this designcalc, numpy and scipy and stream layout (others can never be matched again)."""
+        return (
+            self.tool_version == __version__ and self.library_versions == _library_versions()
+            and self.stream_layout_version == STREAM_LAYOUT_VERSION
+        )
 
 
 def _purpose(runs_json: str) -> str:
@@ -374,10 +387,11 @@ class ResultStore:
         with self._transaction():
             if fingerprint not in self._known_sets:
                 self._db.execute(
-                    "INSERT OR IGNORE INTO result_sets VALUES (?, ?, ?, ?, ?, ?, ?, ?)",
+                    "INSERT OR IGNORE INTO result_sets VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
                     (
                         fingerprint, scenario.name, scenario.source, scenario.sha256,
-                        json.dumps(_runs_description(runs), sort_keys=True), __version__, STREAM_LAYOUT_VERSION, now,
+                        json.dumps(_runs_description(runs), sort_keys=True), __version__, _library_versions(),
+                        STREAM_LAYOUT_VERSION, now,
                     ),
                 )
             self._db.execute(
@@ -404,14 +418,14 @@ class ResultStore:
         rows = self._db.execute(
             """
             SELECT s.fingerprint, s.scenario_name, s.scenario_file, s.scenario_sha256, s.runs, s.tool_version,
-                   s.stream_layout_version, COUNT(DISTINCT b.units || ':' || b.probability_key), COUNT(b.graph_index),
+                   s.library_versions, s.stream_layout_version, COUNT(DISTINCT b.units || ':' || b.probability_key), COUNT(b.graph_index),
                    COALESCE(SUM(LENGTH(b.payload)), 0), s.created, COALESCE(MAX(b.last_used), s.created)
             FROM result_sets s LEFT JOIN blocks b ON b.fingerprint = s.fingerprint
-            GROUP BY s.fingerprint ORDER BY 12 DESC, s.fingerprint
+            GROUP BY s.fingerprint ORDER BY 13 DESC, s.fingerprint
             """
         )
         return [
-            StoredSet(r[0], r[1], r[2], r[3], _purpose(r[4]), r[5], int(r[6]), int(r[7]), int(r[8]), int(r[9]), r[10], r[11])
+            StoredSet(r[0], r[1], r[2], r[3], _purpose(r[4]), r[5], r[6], int(r[7]), int(r[8]), int(r[9]), int(r[10]), r[11], r[12])
             for r in rows
         ]
 

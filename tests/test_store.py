@@ -394,3 +394,20 @@ def test_a_store_that_cannot_be_written_does_not_stop_the_run(tmp_path, monkeypa
         assert "database or disk is full" in store.write_error
         assert store.sets() == []
     assert without_time(result) == without_time(simulate_power(s, **SMALL))
+
+
+def test_sets_from_another_library_version_are_stale(tmp_path):
+    """A set written under another numpy is listed as not reusable and removed by prune --stale; the current one stays."""
+    s = load_scenario(DEMO)
+    path = tmp_path / "r.sqlite"
+    with ResultStore(path) as store:
+        simulate_power(s, store=store, **SMALL)
+        simulate_power(s, store=store, **dict(SMALL, seed=5))
+    with sqlite3.connect(path) as db:
+        db.execute("UPDATE result_sets SET library_versions = '{\"numpy\": \"1.0\", \"scipy\": \"1.0\"}' WHERE rowid = 1")
+    with ResultStore(path) as store:
+        assert sorted(x.reusable for x in store.sets()) == [False, True]
+    pruned = _designcalc("store", "prune", "--store", str(path), "--stale")
+    assert pruned.returncode == 0 and "removed 6 stored graphs (1 sets emptied)" in pruned.stderr, pruned.stderr
+    with ResultStore(path) as store:
+        assert [x.reusable for x in store.sets()] == [True]

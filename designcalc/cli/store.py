@@ -59,11 +59,15 @@ def _chosen(store: ResultStore, prefixes: list[str] | None, scenario: Path | Non
 def _set_dict(s: StoredSet) -> dict[str, object]:
     return {
         "fingerprint": s.fingerprint, "scenario": s.scenario_name, "scenario_file": s.scenario_file,
-        "scenario_sha256": s.scenario_sha256, "runs": s.purpose, "tool_version": s.tool_version,
+        "scenario_sha256": s.scenario_sha256, "runs": s.purpose, "tool_version": s.tool_version, "library_versions": json.loads(s.library_versions),
         "random_stream_layout_version": s.stream_layout_version, "reusable": s.reusable,
         "design_points": s.design_points, "graphs": s.blocks, "bytes": s.payload_bytes,
         "created": s.created, "last_used": s.last_used,
     }
+
+
+def _versions(text: str) -> str:
+    return ", ".join(f"{name} {version}" for name, version in json.loads(text).items())
 
 
 def register(app: typer.Typer) -> None:
@@ -101,7 +105,7 @@ def register(app: typer.Typer) -> None:
             table.add_row(
                 s.fingerprint[:12], s.scenario_name, s.scenario_file, s.purpose, str(s.design_points), str(s.blocks),
                 f"{s.payload_bytes / 1e6:.1f}", s.last_used.replace("+00:00", "Z"),
-                "yes" if s.reusable else f"no (designcalc {s.tool_version}, layout {s.stream_layout_version})",
+                "yes" if s.reusable else f"no (designcalc {s.tool_version}, {_versions(s.library_versions)}, layout {s.stream_layout_version})",
             )
         console = stdout_console()
         console.print(table)
@@ -137,7 +141,7 @@ def register(app: typer.Typer) -> None:
     def prune(
         sets: Sets = None,
         scenario: FromScenario = None,
-        stale: Annotated[bool, typer.Option("--stale", help="Sets written by another designcalc version or random-stream layout (never reusable).")] = False,
+        stale: Annotated[bool, typer.Option("--stale", help="Sets written by another designcalc, numpy or scipy version or random-stream layout (never reusable).")] = False,
         unused_days: Annotated[int | None, typer.Option("--unused-days", min=0, max=100_000, help="Graphs not used for this many days.")] = None,
         everything: Annotated[bool, typer.Option("--all", help="Everything in the store.")] = False,
         store: StoreFile = None,
