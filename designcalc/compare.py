@@ -15,14 +15,18 @@ from __future__ import annotations
 
 import math
 from dataclasses import asdict, dataclass
-from typing import Callable, Sequence
+from typing import TYPE_CHECKING, Callable, Sequence
 
 from designcalc.engine import ESTIMANDS, EngineProgress, planned_keys
 from designcalc.errors import DesignCalcError
 from designcalc.mde import MdeRecord, minimum_detectable_effects
 from designcalc.inference import Z95
 from designcalc.power import CAUTIONS, FlaggedRecord
+from designcalc.execution import Cluster
 from designcalc.scenario import Scenario
+
+if TYPE_CHECKING:
+    from designcalc.store import ResultStore
 
 __all__ = ["DEFAULT_GRID", "TestSpec", "Criterion", "CompareRow", "Choice", "CompareResult", "parse_test_spec", "compare_treatment_probabilities"]
 
@@ -160,6 +164,9 @@ def compare_treatment_probabilities(
     max_graphs: int | None = None,
     batch_size: int = 16,
     progress: Callable[[EngineProgress], None] | None = None,
+    workers: int = 1,
+    cluster: Cluster | None = None,
+    store: ResultStore | None = None,
 ) -> CompareResult:
     """Compare treatment probabilities for every planned size and test (module docstring).
 
@@ -167,6 +174,7 @@ def compare_treatment_probabilities(
     scenario's own.  ``relative_precision`` and ``max_graphs`` apply with
     ``verify=True`` (see ``minimum_detectable_effects``).  Best probability: the smallest MDE; tied: an MDE whose
     difference from the best is within two combined Monte Carlo SEs.
+    ``workers``, ``cluster`` and ``store`` as in ``minimum_detectable_effects``.
 
     Examples
     --------
@@ -184,7 +192,7 @@ def compare_treatment_probabilities(
     mde = minimum_detectable_effects(
         scenario, units=units, treatment_probabilities=grid, graphs=graphs, assignments_per_graph=assignments_per_graph,
         seed=seed, relative_precision=relative_precision, max_graphs=max_graphs, verify=verify,
-        batch_size=batch_size, progress=progress,
+        batch_size=batch_size, progress=progress, workers=workers, cluster=cluster, store=store,
     )
     records = list(mde.records)
     groups: dict[tuple[int, str, str, str], list[MdeRecord]] = {}

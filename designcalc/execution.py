@@ -30,6 +30,7 @@ import signal
 from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import Future, ProcessPoolExecutor
 from contextlib import closing
+from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 from designcalc.engine import DesignPoint, GraphDraws, Run, power_runs, simulate_graph
@@ -48,8 +49,23 @@ GraphTask = tuple[DesignPoint, int]
 # Called with each graph that finished but was never yielded (the caller stopped early).
 Salvage = Callable[[GraphTask, GraphDraws], None] | None
 
+
+
+@dataclass(frozen=True)
+class GraphJob:
+    """How every graph of a call is simulated: which runs, columns per batch, whether to keep units (degrees, types)."""
+
+    runs: Sequence[Run] | None = None
+    batch_size: int = 16
+    keep_units: bool = False
+
+    def simulate(self, scenario: Scenario, task: GraphTask) -> GraphDraws:
+        point, g = task
+        return simulate_graph(scenario, point, g, runs=self.runs, batch_size=self.batch_size, keep_units=self.keep_units)
+
+
 _WORKER_SCENARIO: Scenario | None = None
-_WORKER_RUNS: Sequence[Run] | None = None
+_WORKER_JOB: GraphJob | None = None
 
 
 def available_workers() -> int:
@@ -67,21 +83,19 @@ def check_workers(workers: int) -> int:
     return int(workers)
 
 
-def _init_worker(scenario: Scenario, runs: Sequence[Run] | None) -> None:
-    global _WORKER_SCENARIO, _WORKER_RUNS
+def _init_worker(scenario: Scenario, job: GraphJob) -> None:
+    global _WORKER_SCENARIO, _WORKER_JOB
     signal.signal(signal.SIGINT, signal.SIG_IGN)
-    _WORKER_SCENARIO, _WORKER_RUNS = scenario, runs
+    _WORKER_SCENARIO, _WORKER_JOB = scenario, job
 
 
-def _run_task(task: GraphTask, batch_size: int) -> GraphDraws:
-    assert _WORKER_SCENARIO is not None
-    point, g = task
-    return simulate_graph(_WORKER_SCENARIO, point, g, runs=_WORKER_RUNS, batch_size=batch_size)
+def _run_task(task: GraphTask) -> GraphDraws:
+    assert _WORKER_SCENARIO is not None and _WORKER_JOB is not None
+    return _WORKER_JOB.simulate(_WORKER_SCENARIO, task)
 
 
-def _run_on_dask(task: GraphTask, scenario: Scenario, runs: Sequence[Run] | None, columns: int) -> GraphDraws:
-    point, g = task
-    return simulate_graph(scenario, point, g, runs=runs, batch_size=columns)
+def _run_on_dask(task: GraphTask, scenario: Scenario, job: GraphJob) -> GraphDraws:
+    return job.simulate(scenario, task)
 
 
 def _salvage_finished(tasks: Sequence[GraphTask], futures: Sequence[object], start: int, salvage: Salvage) -> None:
@@ -147,20 +161,16 @@ Cluster = str | ClusterConnection
 
 
 def _simulate_on_dask(
-    scenario: Scenario, tasks: Sequence[GraphTask], cluster: Cluster, batch_size: int, runs: Sequence[Run] | None,
-    salvage: Salvage = None,
+    scenario: Scenario, tasks: Sequence[GraphTask], cluster: Cluster, job: GraphJob, salvage: Salvage = None,
 ) -> Iterator[GraphDraws]:
     if isinstance(cluster, str):
         with ClusterConnection(cluster) as connection:
-            yield from _simulate_on_dask(scenario, tasks, connection, batch_size, runs, salvage)
+            yield from _simulate_on_dask(scenario, tasks, connection, job, salvage)
         return
     futures = []
     yielded = 0
     try:
-        # (Client.map has its own batch_size keyword, hence "columns".)
-        futures = cluster.client.map(
-            _run_on_dask, list(tasks), scenario=cluster.scattered(scenario), runs=runs, columns=batch_size, pure=False,
-        )
+        futures = cluster.client.map(_run_on_dask, list(tasks), scenario=cluster.scattered(scenario), job=job, pure=False)
         for future in futures:
             result = future.result()
             yielded += 1
@@ -181,6 +191,7 @@ def simulate_graphs(
     runs: Sequence[Run] | None = None,
     cluster: Cluster | None = None,
     store: ResultStore | None = None,
+    keep_units: bool = False,
 ) -> Iterator[GraphDraws]:
     """Yield ``simulate_graph`` for each task, in task order, on ``workers`` processes or a dask cluster.
 
@@ -193,6 +204,8 @@ def simulate_graphs(
     is then ignored.  The numbers are the same on every backend.  With a
     ``store`` (``designcalc.store.ResultStore``), stored graphs are read, not
     computed, and each computed graph is stored as it arrives.
+    ``keep_units`` keeps each graph's degrees and types in its draws (as
+    ``simulate_graph``).
 
     Examples
     --------
@@ -206,20 +219,21 @@ def simulate_graphs(
     True
     """
     workers = check_workers(workers)
+    job = GraphJob(power_runs(scenario) if runs is None else tuple(runs), batch_size, keep_units)
     if store is None:
-        yield from _compute(scenario, tasks, workers, batch_size, runs, cluster, None)
+        yield from _compute(scenario, tasks, workers, job, cluster, None)
         return
-    yield from _through_store(scenario, tasks, workers, batch_size, runs, cluster, store)
+    yield from _through_store(scenario, tasks, workers, job, cluster, store)
 
 
 def _through_store(
-    scenario: Scenario, tasks: Sequence[GraphTask], workers: int, batch_size: int, runs: Sequence[Run] | None,
-    cluster: Cluster | None, store: ResultStore,
+    scenario: Scenario, tasks: Sequence[GraphTask], workers: int, job: GraphJob, cluster: Cluster | None, store: ResultStore,
 ) -> Iterator[GraphDraws]:
     from designcalc.store import stored_or_computed
 
-    runs = power_runs(scenario) if runs is None else runs
-    fingerprint, stored = stored_or_computed(store, scenario, runs, tasks)
+    runs = job.runs
+    assert runs is not None
+    fingerprint, stored = stored_or_computed(store, scenario, runs, tasks, keep_units=job.keep_units)
 
     def keep(task: GraphTask, draws: GraphDraws) -> None:
         store.put(fingerprint, scenario, runs, task[0], task[1], draws)
@@ -228,14 +242,14 @@ def _through_store(
     missing = [task for task, have in zip(tasks, stored) if not have]
     reused: list[GraphTask] = []
     try:
-        with closing(_compute(scenario, missing, workers, batch_size, runs, cluster, keep)) as computed:
+        with closing(_compute(scenario, missing, workers, job, cluster, keep)) as computed:
             for task, have in zip(tasks, stored):
                 draws = store.fetch(fingerprint, *task) if have else None
                 if draws is not None:
                     store.reused += 1
                     reused.append(task)
                 elif have:  # stored but unreadable: compute it again here and replace it
-                    draws = simulate_graph(scenario, task[0], task[1], runs=runs, batch_size=batch_size)
+                    draws = job.simulate(scenario, task)
                     keep(task, draws)
                 else:
                     draws = next(computed)
@@ -246,29 +260,28 @@ def _through_store(
 
 
 def _compute(
-    scenario: Scenario, tasks: Sequence[GraphTask], workers: int, batch_size: int, runs: Sequence[Run] | None,
-    cluster: Cluster | None, salvage: Salvage,
+    scenario: Scenario, tasks: Sequence[GraphTask], workers: int, job: GraphJob, cluster: Cluster | None, salvage: Salvage,
 ) -> Iterator[GraphDraws]:
     if not tasks:
         return
     if cluster is not None:
-        yield from _simulate_on_dask(scenario, tasks, cluster, batch_size, runs, salvage)
+        yield from _simulate_on_dask(scenario, tasks, cluster, job, salvage)
         return
     if workers == 1 or len(tasks) <= 1:
-        for point, g in tasks:
-            yield simulate_graph(scenario, point, g, runs=runs, batch_size=batch_size)
+        for task in tasks:
+            yield job.simulate(scenario, task)
         return
     # fork where the platform has it: the scenario reaches the workers without pickling and
     # they start in milliseconds; elsewhere spawn, which pickles it once per worker.
     method = "fork" if "fork" in multiprocessing.get_all_start_methods() else "spawn"
     pool = ProcessPoolExecutor(
         max_workers=min(workers, len(tasks)), mp_context=multiprocessing.get_context(method),
-        initializer=_init_worker, initargs=(scenario, runs),
+        initializer=_init_worker, initargs=(scenario, job),
     )
     futures: list[Future[GraphDraws]] = []
     yielded = 0
     try:
-        futures = [pool.submit(_run_task, task, batch_size) for task in tasks]
+        futures = [pool.submit(_run_task, task) for task in tasks]
         for future in futures:
             result = future.result()
             yielded += 1

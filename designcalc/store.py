@@ -133,10 +133,15 @@ def _runs_description(runs: Sequence[Run]) -> list[object]:
     return [_canonical({"label": r.label, "model": r.model, "estimands": r.estimands, "keys": r.keys}) for r in runs]
 
 
-def numbers_fingerprint(scenario: Scenario, runs: Sequence[Run] | None = None) -> str:
-    """SHA-256 over everything that changes a graph's results (module docstring); ``runs`` default: the power table's."""
+def numbers_fingerprint(scenario: Scenario, runs: Sequence[Run] | None = None, *, keep_units: bool = False) -> str:
+    """SHA-256 over everything that changes a graph's results (module docstring); ``runs`` default: the power table's.
+
+    ``keep_units`` (draws that carry the graph's degrees and types) is part
+    of it, so a caller that needs them never gets a block without them.
+    """
     runs = power_runs(scenario) if runs is None else runs
     content = {
+        "keep_units": bool(keep_units),
         "tool_version": __version__,
         # numpy's distributions and scipy's eigen-solvers may change results between releases.
         "numpy": np.__version__,
@@ -492,10 +497,10 @@ class _Transaction:
 
 
 def stored_or_computed(
-    store: ResultStore, scenario: Scenario, runs: Sequence[Run], tasks: Sequence[tuple[DesignPoint, int]]
+    store: ResultStore, scenario: Scenario, runs: Sequence[Run], tasks: Sequence[tuple[DesignPoint, int]], *, keep_units: bool = False,
 ) -> tuple[str, list[bool]]:
     """The fingerprint of these runs and, per task, whether its block is already stored."""
-    fingerprint = numbers_fingerprint(scenario, runs)
+    fingerprint = numbers_fingerprint(scenario, runs, keep_units=keep_units)
     have: dict[DesignPoint, set[int]] = {}
     stored = []
     for point, g in tasks:

@@ -233,9 +233,9 @@ def _interrupt_at(module: object, monkeypatch: pytest.MonkeyPatch, when: object)
 @pytest.mark.parametrize(
     ("module", "args", "when", "finished"),
     [
-        (designcalc.mde, ("mde", MARROW, "-n", "200", "-n", "300", "-p", "0.5", *TINY, *PRECISE), lambda p: p.units == 300, {"units": 200}),
+        (designcalc.execution, ("mde", MARROW, "-n", "200", "-n", "300", "-p", "0.5", *TINY, *PRECISE), lambda p: p.units == 300, {"units": 200}),
         (designcalc.execution, ("size", MARROW, "-p", "0.4", "-p", "0.5", "--max-units", "800", *TINY, *PRECISE), lambda p: p.treatment_probability == 0.5, {"treatment_probability": 0.4}),
-        (designcalc.mde, ("compare", MARROW, "-n", "200", "-n", "300", "-p", "0.5", *TINY, "--objective", "direct"), lambda p: p.units == 300, {"units": 200}),
+        (designcalc.execution, ("compare", MARROW, "-n", "200", "-n", "300", "-p", "0.5", *TINY, "--objective", "direct"), lambda p: p.units == 300, {"units": 200}),
     ],
     ids=["mde", "size", "compare"],
 )

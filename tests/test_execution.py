@@ -155,3 +155,25 @@ def test_kernel_scenarios_pickle_so_spawned_workers_get_the_same_numbers():
             there = pool.submit(simulate_graph, s, DesignPoint(200, 0.4), 1).result()
         for key in here.estimates:
             assert (here.estimates[key] == there.estimates[key]).all(), key
+
+
+def test_mde_and_compare_are_identical_on_one_and_two_workers_and_from_the_store(tmp_path):
+    """The MDE search (null pass, verification, adaptive rounds) and the probability comparison give equal results
+    in-process (with its graph cache), on a two-process pool, and rerun from a results store that then computes nothing."""
+    from designcalc.compare import compare_treatment_probabilities
+    from designcalc.mde import minimum_detectable_effects
+    from designcalc.store import ResultStore
+
+    s = load_scenario(DEMO)
+    settings = dict(units=[300], treatment_probabilities=[0.5], graphs=6, assignments_per_graph=5, relative_precision=0.15, max_graphs=24)
+    one = minimum_detectable_effects(s, workers=1, **settings)
+    two = minimum_detectable_effects(s, workers=2, **settings)
+    with ResultStore(tmp_path / "r.sqlite") as store:
+        stored = minimum_detectable_effects(s, workers=2, store=store, **settings)
+        computed = store.computed
+        again = minimum_detectable_effects(s, workers=1, store=store, **settings)
+        assert store.computed == computed and store.reused == computed
+    assert without_time(one) == without_time(two) == without_time(stored) == without_time(again)
+    assert any(r.graphs > 6 for r in one.records)  # the adaptive rounds ran
+    compare = dict(probabilities=[0.3, 0.5], units=[300], graphs=4, assignments_per_graph=4)
+    assert without_time(compare_treatment_probabilities(s, workers=1, **compare)) == without_time(compare_treatment_probabilities(s, workers=2, **compare))

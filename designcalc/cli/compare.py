@@ -12,6 +12,8 @@ from rich.console import Console
 
 from designcalc.cli.output import (
     Assignments,
+    Cluster,
+    Workers,
     FiguresDir,
     OutputFormat,
     ScenarioFile,
@@ -34,6 +36,7 @@ from designcalc.cli.output import (
     simulate_with_progress,
     write_figures,
 )
+from designcalc.cli.running import NoStore, StorePath, execution
 from designcalc.compare import (
     CompareResult,
     CompareRow,
@@ -190,6 +193,10 @@ def register(app: typer.Typer) -> None:
         cap: Annotated[list[str] | None, typer.Option(help="With --objective: only probabilities where MDE(SPEC) <= VALUE (outcome units), as SPEC=VALUE; repeat for several.")] = None,
         output_format: OutputFormat = "table",
         figures: FiguresDir = None,
+        workers: Workers = None,
+        cluster: Cluster = None,
+        store: StorePath = None,
+        no_store: NoStore = False,
     ) -> None:
         """Compare treatment probabilities by SE, MDE and test size for every planned test, and pick one by a joint criterion."""
         loaded = load_checked(
@@ -198,17 +205,18 @@ def register(app: typer.Typer) -> None:
         )
         sizes = units or loaded.population.units
         criterion = build_criterion(loaded, sizes, objective, cap or ())
-        solve = partial(
-            compare_treatment_probabilities, loaded, probabilities=probabilities, units=units, criterion=criterion,
-            verify=verify, graphs=graphs, assignments_per_graph=assignments, seed=seed, relative_precision=precision,
-            max_graphs=max_graphs,
-        )
 
         def table(res: CompareResult, console: Console) -> None:
             render_table(res, console, scenario=loaded, verify=verify, resolved=resolved_tests(loaded, sizes, criterion))
 
         check_figures_dir(figures)
-        result = simulate_with_progress(solve, known_total=False)
+        with execution(loaded, workers, cluster, store, no_store) as where:
+            solve = partial(
+                compare_treatment_probabilities, loaded, probabilities=probabilities, units=units, criterion=criterion,
+                verify=verify, graphs=graphs, assignments_per_graph=assignments, seed=seed, relative_precision=precision,
+                max_graphs=max_graphs, workers=where.workers, cluster=where.cluster, store=where.store,
+            )
+            result = simulate_with_progress(solve, known_total=False)
         write_figures(figures, lambda: _figures(result))
         emit(result, output_format, table=table, csv_text=render_csv)
 

@@ -10,6 +10,8 @@ from rich.console import Console
 
 from designcalc.cli.output import (
     Assignments,
+    Cluster,
+    Workers,
     FiguresDir,
     OutputFormat,
     ScenarioFile,
@@ -35,6 +37,7 @@ from designcalc.cli.output import (
     span,
     write_figures,
 )
+from designcalc.cli.running import NoStore, StorePath, execution
 from designcalc.mde import AGREEMENT_Z, MdeRecord, MdeResult, minimum_detectable_effects
 from designcalc.scenario import Scenario
 
@@ -129,20 +132,26 @@ def register(app: typer.Typer) -> None:
         verify: Annotated[bool, typer.Option("--verify/--no-verify", help="Verify each formula MDE by simulation (default), or report the formula only.")] = True,
         output_format: OutputFormat = "table",
         figures: FiguresDir = None,
+        workers: Workers = None,
+        cluster: Cluster = None,
+        store: StorePath = None,
+        no_store: NoStore = False,
     ) -> None:
         """Minimum detectable direct, spillover and total effects of every planned test, verified by simulation."""
         loaded = load_checked(scenario, output_format, treatment_probability, precision=precision, max_graphs=max_graphs, graphs=graphs)
-        solve = partial(
-            minimum_detectable_effects, loaded, units=units, treatment_probabilities=treatment_probability, graphs=graphs,
-            assignments_per_graph=assignments, seed=seed, relative_precision=precision, max_graphs=max_graphs, verify=verify,
-        )
         requested, cap = precision_settings(loaded, precision, max_graphs, graphs)
 
         def table(res: MdeResult, console: Console) -> None:
             render_table(res, console, scenario=loaded, precision=requested, max_graphs=cap)
 
         check_figures_dir(figures)
-        result = simulate_with_progress(solve, known_total=False)
+        with execution(loaded, workers, cluster, store, no_store) as where:
+            solve = partial(
+                minimum_detectable_effects, loaded, units=units, treatment_probabilities=treatment_probability, graphs=graphs,
+                assignments_per_graph=assignments, seed=seed, relative_precision=precision, max_graphs=max_graphs, verify=verify,
+                workers=where.workers, cluster=where.cluster, store=where.store,
+            )
+            result = simulate_with_progress(solve, known_total=False)
         write_figures(figures, lambda: _figures(result))
         emit(result, output_format, table=table, csv_text=render_csv)
 

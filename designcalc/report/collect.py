@@ -99,7 +99,7 @@ class ReportSettings:
     assignments_per_graph: int | None = None
     seed: int | None = None
     batch_size: int = 16
-    workers: int = 1  # local processes for the power table and the size search; a speed knob, not in the provenance
+    workers: int = 1  # local processes for every phase; a speed knob, not in the provenance
 
     def __post_init__(self) -> None:
         if not 0 < self.precision <= 0.5:
@@ -427,6 +427,7 @@ def build_report(
     _refuse_partial(power.partial)
     mde = minimum_detectable_effects(
         solving, relative_precision=settings.precision, batch_size=settings.batch_size, progress=phase("minimum detectable effects"),
+        workers=settings.workers, cluster=cluster, store=store,
     )
     _refuse_partial(mde.partial)
     size = required_sample_size(
@@ -437,6 +438,7 @@ def build_report(
     _refuse_partial(size.partial)
     compare = compare_treatment_probabilities(
         solving, units=[compare_units], batch_size=settings.batch_size, progress=phase("treatment probabilities"),
+        workers=settings.workers, cluster=cluster, store=store,
     )
     _refuse_partial(compare.partial)
 
