@@ -46,7 +46,10 @@ from designcalc.estimators import (
     estimate_spillover_pc_corrected,
     prepare_graph,
     residualise_on_covariates,
+    treated_neighbour_counts,
+    treated_neighbour_fraction,
 )
+from designcalc.memory import check_memory
 from designcalc.networks import SampledNetwork, kernel_grid_cells, sample_network
 from designcalc.outcomes import OutcomeModel
 from designcalc.scenario import Scenario
@@ -277,6 +280,7 @@ def _run_estimators(
     keys: Sequence[tuple[str, str, str]],
     failures: dict[str, str] | None = None,
     covariates: np.ndarray | None = None,
+    exposure: Callable[[], np.ndarray] | None = None,
 ) -> dict[tuple[str, str, str], EstimateBatch]:
     """The estimates of ``keys`` on one assignment batch; each estimator runs at most once.
 
@@ -284,9 +288,13 @@ def _run_estimators(
     ``failures``.  ``covariates`` (n, B, K) feed Lin's estimator and the
     ``*_adjusted`` spillover estimators, which run their unadjusted form on
     covariate-residualised outcomes (the exposure regression adds them as
-    regressors instead).
+    regressors instead).  ``exposure()`` gives the batch's treated-neighbour
+    fraction, computed once for every run and both exposure regressions.
     """
     failures = {} if failures is None else failures
+    if exposure is None:
+        def exposure() -> np.ndarray:
+            return treated_neighbour_fraction(prep, W)
     plan = scenario.estimators
     cache: dict[tuple[str, str], EstimateBatch] = {}
 
@@ -317,7 +325,9 @@ def _run_estimators(
 
     def _spillover_batch(name: str) -> EstimateBatch:
         if name == "exposure_regression_adjusted":
-            return estimate_spillover_exposure_regression(prep, W, Y, treatment_probability=pi, covariates=covariates)
+            return estimate_spillover_exposure_regression(
+                prep, W, Y, treatment_probability=pi, covariates=covariates, exposure=exposure()
+            )
         if name.endswith("_adjusted"):
             if not residualised:
                 residualised.append(residualise_on_covariates(prep, Y, covariates))
@@ -331,7 +341,7 @@ def _run_estimators(
             return estimate_spillover_pc(prep, W, outcomes, treatment_probability=pi)
         if name == "pc_balancing_corrected":
             return estimate_spillover_pc_corrected(prep, W, outcomes, treatment_probability=pi)
-        return estimate_spillover_exposure_regression(prep, W, outcomes, treatment_probability=pi)
+        return estimate_spillover_exposure_regression(prep, W, outcomes, treatment_probability=pi, exposure=exposure())
 
     out: dict[tuple[str, str, str], EstimateBatch] = {}
     for key in keys:
@@ -355,7 +365,7 @@ class _PreparedGraph:
     net: object
     theta: np.ndarray
     prep: GraphPreparation
-    W_all: np.ndarray
+    W_all: np.ndarray  # (n, B) bool: 1 byte per cell, turned into float64 one batch at a time
     noise_all: np.ndarray
     covariates_all: np.ndarray | None = None  # (n, B, K) baseline covariates, when the scenario states any
     moments: ExposureMoments | None = None
@@ -370,9 +380,11 @@ def _estimands(g: _PreparedGraph, model: OutcomeModel, pi: float) -> Estimands:
     return estimands_from_moments(g.moments, model)
 
 
-def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int) -> _PreparedGraph:
+def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int, batch_size: int = 16) -> _PreparedGraph:
     entropy = scenario.simulation.seed
     n, pi = point.units, point.treatment_probability
+    # Before anything is drawn: a graph that cannot fit stops with the estimate, not an out-of-memory kill.
+    check_memory(scenario, n, batch_size=batch_size)
     types_rng, graph_rng = _graph_streams(entropy, n, graph_index)
     bounds = None
     if scenario.network.kind == "kernel":
@@ -385,10 +397,11 @@ def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int) -> _Prepa
         n_eigenvectors=scenario.estimators.eigenvectors,
         mean_degree_hint=float(degrees.mean()) if n else 0.0,
         two_hop="two_hop" in scenario.estimators.direct_variance and n <= TWO_HOP_MAX_UNITS,
+        check_input=False,  # graphs.to_csr builds symmetric 0/1 canonical CSR by construction
     )
     assign_rng, noise_rng, covariate_rng = _assignment_streams(entropy, point, graph_index)
     B = scenario.simulation.assignments_per_graph
-    W_all = (assign_rng.random((n, B)) < pi).astype(float)
+    W_all = assign_rng.random((n, B)) < pi
     if scenario.outcome.kind == "continuous":
         noise_all = noise_rng.standard_normal((n, B))
     else:
@@ -426,23 +439,29 @@ def control_variance(model: OutcomeModel, theta: np.ndarray) -> float:
     return float(np.var(mean) + np.mean(mean * (1.0 - mean)))
 
 
-def _nbytes(value: object) -> int:
+def _buffers(value: object) -> list[np.ndarray]:
     if isinstance(value, np.ndarray):
-        return value.nbytes
+        return [value]
     if hasattr(value, "data") and hasattr(value, "indices") and hasattr(value, "indptr"):
-        return value.data.nbytes + value.indices.nbytes + value.indptr.nbytes  # a sparse matrix
-    return 0
+        return [value.data, value.indices, value.indptr]  # a sparse matrix
+    return []
 
 
 def _footprint(prepared: _PreparedGraph) -> int:
-    """Bytes a cached graph holds: assignments, noise, adjacency and every array of the estimator preparation."""
+    """Bytes a cached graph holds: assignments, noise, adjacency and every array of the estimator preparation.
+
+    Arrays that share memory (the float32 adjacency shares the index arrays,
+    the preparation holds the sampled adjacency itself) are counted once.
+    """
     prep = prepared.prep
-    arrays = [getattr(prep, f) for f in getattr(prep, "__dataclass_fields__", {})]
-    covariates = prepared.covariates_all.nbytes if prepared.covariates_all is not None else 0
-    return (
-        covariates + prepared.W_all.nbytes + prepared.noise_all.nbytes + _nbytes(prepared.net.adjacency)
-        + sum(_nbytes(a) for a in arrays) + prepared.theta.nbytes
-    )
+    values = [getattr(prep, f) for f in getattr(prep, "__dataclass_fields__", {})]
+    values += [prepared.covariates_all, prepared.W_all, prepared.noise_all, prepared.net.adjacency, prepared.theta]
+    seen: dict[tuple[int, int], int] = {}
+    for value in values:
+        for array in _buffers(value):
+            base = array if array.base is None or not isinstance(array.base, np.ndarray) else array.base
+            seen[(base.__array_interface__["data"][0], base.nbytes)] = base.nbytes
+    return sum(seen.values())
 
 
 class GraphCache:
@@ -458,11 +477,11 @@ class GraphCache:
         self._used = 0
         self._items: dict[tuple[DesignPoint, int], _PreparedGraph] = {}
 
-    def get(self, scenario: Scenario, point: DesignPoint, graph_index: int) -> _PreparedGraph:
+    def get(self, scenario: Scenario, point: DesignPoint, graph_index: int, batch_size: int = 16) -> _PreparedGraph:
         key = (point, graph_index)
         if key in self._items:
             return self._items[key]
-        prepared = _prepare(scenario, point, graph_index)
+        prepared = _prepare(scenario, point, graph_index, batch_size)
         size = _footprint(prepared)
         if self._used + size <= self.max_bytes:
             self._items[key] = prepared
@@ -510,8 +529,8 @@ def _simulate_graph(
 ) -> GraphDraws:
     runs = power_runs(scenario) if runs is None else runs
     n, pi = point.units, point.treatment_probability
-    g = cache.get(scenario, point, graph_index) if cache is not None else _prepare(scenario, point, graph_index)
-    A, degrees = g.net.adjacency, g.net.degrees
+    g = cache.get(scenario, point, graph_index, batch_size) if cache is not None else _prepare(scenario, point, graph_index, batch_size)
+    degrees = g.net.degrees
     available = planned_keys(scenario, n)
     run_keys = {
         run.label: [k for k in available if k[0] in run.estimands and (run.keys is None or k in run.keys)] for run in runs
@@ -530,15 +549,25 @@ def _simulate_graph(
     B = g.W_all.shape[1]
     chunks: dict[str, list[tuple[dict, dict]]] = {run.label: [] for run in runs}
     for start in range(0, B, batch_size):
-        W = g.W_all[:, start : start + batch_size]
+        W = g.W_all[:, start : start + batch_size].astype(np.float64)
         noise = g.noise_all[:, start : start + batch_size]
         C = g.covariates_all[:, start : start + batch_size] if g.covariates_all is not None else None
-        X = (A @ W) / safe_degrees
+        # One exact sparse product per batch (float32 counts, estimators.treated_neighbour_counts)
+        # serves the outcomes and every exposure regression of every run.
+        counts = treated_neighbour_counts(g.prep, W)
+        X = counts / safe_degrees
+        exposure: list[np.ndarray] = []
+
+        def batch_exposure(W: np.ndarray = W, counts: np.ndarray = counts, exposure: list[np.ndarray] = exposure) -> np.ndarray:
+            if not exposure:
+                exposure.append(treated_neighbour_fraction(g.prep, W, counts=counts))
+            return exposure[0]
+
         for run in runs:
             if not run_keys[run.label]:
                 continue  # a run kept for its exact estimands only
             Y = _outcomes(run.model, g.theta, W, X, noise)
-            batches = _run_estimators(scenario, g.prep, W, Y, pi, run_keys[run.label], draws.failures, C)
+            batches = _run_estimators(scenario, g.prep, W, Y, pi, run_keys[run.label], draws.failures, C, batch_exposure)
             chunks[run.label].append(({k: v.estimate for k, v in batches.items()}, {k: v.standard_error for k, v in batches.items()}))
     for run in runs:
         if not run_keys[run.label]:

@@ -255,7 +255,7 @@ def to_csr(n: int, rows: np.ndarray, cols: np.ndarray) -> sp.sparse.csr_array:
 
     Notes
     -----
-    One sort of the 2m keys row * n + col: O(n + m log m).
+    A counting sort by row and a sort within each row: O(n + m log(max degree)).
 
     Examples
     --------
@@ -289,18 +289,18 @@ def to_csr(n: int, rows: np.ndarray, cols: np.ndarray) -> sp.sparse.csr_array:
             raise ModelError(
                 f"edges must join two different nodes; got a self-loop at node {rows[np.flatnonzero(loops)[0]]}"
             )
-    keys = _sorted_distinct(np.concatenate([rows * n + cols, cols * n + rows]))
-    row_of = keys // n if n else keys
-    col_of = keys - row_of * n
-    indptr = np.zeros(n + 1, dtype=np.int64)
-    np.cumsum(np.bincount(row_of, minlength=n), out=indptr[1:])
-    index_dtype = np.int32 if max(n, keys.size) < np.iinfo(np.int32).max else np.int64
-    adjacency = sp.sparse.csr_array(
-        (np.ones(keys.size), col_of.astype(index_dtype), indptr.astype(index_dtype)),
-        shape=(n, n),
-    )
-    # True by construction; recording it saves scipy an O(nnz) check later.
-    adjacency.has_canonical_format = True
+    # Counting sort by row (scipy's COO -> CSR, O(n + m)), then a sort within
+    # each row (~degree entries) and the merge of repeated pairs: about 3x
+    # faster at 10^7 edges than one global sort of the 2m keys row * n + col.
+    # int32 indices (half the memory of int64) whenever n and 2m allow.
+    index_dtype = np.int32 if max(n, 2 * rows.size) < np.iinfo(np.int32).max else np.int64
+    both_rows = np.concatenate([rows, cols]).astype(index_dtype)
+    both_cols = np.concatenate([cols, rows]).astype(index_dtype)
+    adjacency = sp.sparse.coo_array(
+        (np.ones(both_rows.size), (both_rows, both_cols)), shape=(n, n)
+    ).tocsr()
+    # A pair given twice was summed to 2: it is one edge.
+    adjacency.data[:] = 1.0
     return adjacency
 
 
@@ -505,28 +505,47 @@ def _decode_positions(
     sizes: np.ndarray,
     offsets: np.ndarray,
 ) -> tuple[np.ndarray, np.ndarray]:
-    """Turn (block pair, pair position) into global node pairs (i < j)."""
-    row_block = block_row[pair_id]
-    col_block = block_col[pair_id]
-    local_i = np.empty_like(position)
-    local_j = np.empty_like(position)
+    """Turn (block pair, pair position) into global node pairs (i < j), in input order.
 
-    within = row_block == col_block
-    t = position[within]
-    # Position t = j(j - 1)/2 + i with 0 <= i < j: j is the largest integer with
-    # j(j - 1)/2 <= t. The float root can be one off for huge t; fix in integers.
-    j = np.floor((1.0 + np.sqrt(1.0 + 8.0 * t.astype(float))) / 2.0).astype(np.int64)
-    while np.any(too_big := j * (j - 1) // 2 > t):
-        j -= too_big
-    while np.any(too_small := (j + 1) * j // 2 <= t):
-        j += too_small
-    local_i[within] = t - j * (j - 1) // 2
-    local_j[within] = j
+    The sampler hands over positions grouped by block pair (one run per pair,
+    or per dense chunk), so each run is decoded with slices and scalar block
+    constants: boolean masks and per-edge gathers of block attributes cost
+    more than the arithmetic at 10^7 edges.
+    """
+    first = np.empty_like(position)
+    second = np.empty_like(position)
+    if position.size == 0:
+        return first, second
+    run_starts = np.concatenate([[0], np.flatnonzero(pair_id[1:] != pair_id[:-1]) + 1, [pair_id.size]])
+    for start, stop in zip(run_starts[:-1].tolist(), run_starts[1:].tolist()):
+        pair = int(pair_id[start])
+        row_block, col_block = int(block_row[pair]), int(block_col[pair])
+        t = position[start:stop]
+        if row_block == col_block:
+            local_i, local_j = _decode_triangular(t)
+        else:
+            width = int(sizes[col_block])
+            local_i = t // width
+            local_j = t - local_i * width
+        # Block pairs are upper-triangle (row block <= column block), so i < j globally.
+        np.add(local_i, offsets[row_block], out=first[start:stop])
+        np.add(local_j, offsets[col_block], out=second[start:stop])
+    return first, second
 
-    between = ~within
-    width = sizes[col_block[between]]
-    local_i[between] = position[between] // width
-    local_j[between] = position[between] % width
 
-    # Block pairs are upper-triangle (row block <= column block), so i < j globally.
-    return offsets[row_block] + local_i, offsets[col_block] + local_j
+def _decode_triangular(t: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Position t = j(j - 1)/2 + i with 0 <= i < j, decoded to (i, j)."""
+    # j is the largest integer with j(j - 1)/2 <= t, i.e. floor((1 + sqrt(8t + 1)) / 2).
+    # Below 2^50, 8t + 1 is an exact double and a correctly rounded square root
+    # never crosses an odd integer (2j + 1)^2 (perfect squares have exact roots),
+    # so the float root is exact; above it, fix the root up in integers.
+    j = ((1.0 + np.sqrt(8.0 * t + 1.0)) * 0.5).astype(np.int64)
+    big = t >= 2**50
+    if np.any(big):
+        tb, jb = t[big], j[big]
+        while np.any(too_big := jb * (jb - 1) // 2 > tb):
+            jb -= too_big
+        while np.any(too_small := (jb + 1) * jb // 2 <= tb):
+            jb += too_small
+        j[big] = jb
+    return t - (j * (j - 1) >> 1), j
