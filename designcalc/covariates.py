@@ -41,6 +41,7 @@ import scipy.special
 import scipy.stats
 
 from designcalc.edge_models import BlockModel, EdgeModel
+from designcalc.surveyed import SurveyedNetwork
 from designcalc.errors import ModelError
 from designcalc.outcomes import OutcomeModel
 
@@ -109,7 +110,8 @@ class CovariateLoadings:
 def _type_distribution(outcome: OutcomeModel, network: EdgeModel) -> np.ndarray:
     """theta(u) at midpoint nodes of u ~ U(0, 1): the population distribution of the type effect."""
     u = (np.arange(_TYPE_NODES) + 0.5) / _TYPE_NODES
-    blocks = network.block_of(u) if isinstance(network, BlockModel) else None
+    # A surveyed network's villages are blocks on intervals of u, as in a block model.
+    blocks = network.block_of(u) if isinstance(network, (BlockModel, SurveyedNetwork)) else None
     if outcome.block_effects and blocks is None:
         raise ModelError("block_effects need a block model")
     return outcome.type_values(u, blocks)

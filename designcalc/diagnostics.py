@@ -18,6 +18,7 @@ from designcalc.edge_models import BlockModel, EdgeModel, kernel_quadrature
 from designcalc.estimands import Estimands, exact_estimands
 from designcalc.networks import sample_network
 from designcalc.scenario import Scenario
+from designcalc.surveyed import SurveyedNetwork
 
 __all__ = ["ScenarioCheck", "SizeCheck", "check_scenario", "expected_share_isolated", "sparsity_regime"]
 
@@ -64,8 +65,11 @@ class ScenarioCheck:
 def expected_share_isolated(model: EdgeModel, rho: float, n_units: int) -> float:
     """P(a unit has no neighbour) = E_u[(1 - integral of min(1, rho g(u, v)) dv)^(n-1)].
 
-    Exact for block models (iid block labels); quadrature for kernels.
+    Exact for block models (iid block labels); quadrature for kernels; the
+    observed share for a surveyed network.
     """
+    if isinstance(model, SurveyedNetwork):
+        return model.share_isolated()
     if isinstance(model, BlockModel):
         s = np.asarray(model.shares)
         p = np.minimum(1.0, rho * model.normalised_matrix())
@@ -115,6 +119,12 @@ def check_scenario(scenario: Scenario) -> ScenarioCheck:
     """Compute what ``scenario`` implies at every planned size (no power simulation)."""
     model, rule = scenario.network, scenario.density
     regime, explanation = sparsity_regime(rule.growth_exponent)
+    if isinstance(model, SurveyedNetwork):
+        regime, explanation = (
+            "surveyed network, held fixed",
+            "The network is the surveyed one at its own size; only assignments, latent types and noise are random. "
+            "How the estimators behave as studies grow does not apply; to plan other sizes, fit an edge model (designcalc fit).",
+        )
     sizes = []
     for n in scenario.population.units:
         density = density_at_size(model, rule, n)

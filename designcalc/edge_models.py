@@ -20,6 +20,7 @@ from typing import Callable
 import numpy as np
 
 from designcalc.errors import ModelError
+from designcalc.surveyed import SurveyedNetwork
 from designcalc.expression import Expression, compile_expression
 
 __all__ = [
@@ -332,4 +333,5 @@ class KernelModel:
         return f"smooth kernel '{self.family}' ({detail})"
 
 
-EdgeModel = BlockModel | KernelModel
+# A surveyed network (designcalc.surveyed) stands where an edge model would: the graph itself, held fixed.
+EdgeModel = BlockModel | KernelModel | SurveyedNetwork

@@ -15,6 +15,7 @@ import scipy as sp
 from designcalc.density import DensityRule
 from designcalc.edge_models import BlockModel, EdgeModel
 from designcalc.graphs import sample_block_graph, sample_kernel_graph
+from designcalc.surveyed import SurveyedNetwork
 
 __all__ = ["SampledNetwork", "sample_network", "kernel_grid_cells"]
 
@@ -51,6 +52,9 @@ def sample_network(
     Units are ordered by type (they are exchangeable), so a block model's
     blocks are contiguous.  O(n + edges).
     """
+    if isinstance(model, SurveyedNetwork):
+        # The surveyed graph itself, every time; only the types are drawn (graph_rng is not used).
+        return SampledNetwork(model.adjacency, model.draw_types(types_rng), model.villages)
     rho = rule.rho(n_units)
     types = np.sort(types_rng.random(n_units))
     if isinstance(model, BlockModel):

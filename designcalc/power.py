@@ -29,6 +29,7 @@ from designcalc.engine import (
     design_points,
     dropped_keys,
 )
+from designcalc.errors import DesignCalcError
 from designcalc.inference import Z95, critical_value, floored_power_se, reference_distribution
 from designcalc.scenario import Scenario
 
@@ -283,6 +284,8 @@ def provenance(scenario: Scenario, **settings: object) -> dict[str, object]:
         "scenario_file": scenario.source,
         "scenario_sha256": scenario.sha256,
         "seed_entropy": scenario.simulation.seed,
+        **({"surveyed_network_sha256": scenario.network.sha256, "surveyed_network_files": list(scenario.network.files)}
+           if scenario.network.kind == "surveyed" else {}),
         "random_stream_layout_version": STREAM_LAYOUT_VERSION,
         "graphs_per_design_point": scenario.simulation.graphs,
         "assignments_per_graph": scenario.simulation.assignments_per_graph,
@@ -297,6 +300,11 @@ def provenance(scenario: Scenario, **settings: object) -> dict[str, object]:
 
 
 def _override(scenario: Scenario, units: Sequence[int] | None, probabilities: Sequence[float] | None, graphs: int | None, assignments_per_graph: int | None, seed: int | None) -> Scenario:
+    if units and scenario.network.kind == "surveyed" and tuple(sorted(set(units))) != scenario.population.units:
+        raise DesignCalcError(
+            f"--units {', '.join(str(u) for u in units)}: {scenario.source} plans on a surveyed network of "
+            f"{scenario.population.units[0]} units, held fixed; leave --units out (or fit an edge model with `designcalc fit` to plan other sizes)"
+        )
     pop = replace(scenario.population, units=tuple(sorted(units))) if units else scenario.population
     design = replace(scenario.design, treatment_probabilities=tuple(sorted(probabilities))) if probabilities else scenario.design
     sim = scenario.simulation

@@ -49,6 +49,7 @@ from designcalc.engine import (
     null_label,
     planned_keys,
 )
+from designcalc.errors import DesignCalcError
 from designcalc.execution import Cluster, check_workers, simulate_graphs
 from designcalc.inference import Z95, critical_value, floored_power_se, probit, reference_distribution
 from designcalc.power import CAUTIONS, FlaggedRecord, ResultTable, clustered_mean_se, clustered_sd, provenance, reject, stack_run
@@ -323,6 +324,12 @@ def required_sample_size(
     """
     from designcalc.power import _override
 
+    if scenario.network.kind == "surveyed":
+        raise DesignCalcError(
+            f"{scenario.source}: network.model = \"surveyed\" fixes the study at the surveyed {scenario.population.units[0]} units, "
+            "so there is no sample size to solve for; use `designcalc power` or `mde` at that size, "
+            "or fit an edge model to the survey (`designcalc fit`) to plan other sizes"
+        )
     scenario = _override(scenario, None, treatment_probabilities, graphs, assignments_per_graph, seed)
     sim = scenario.simulation
     precision = sim.relative_precision if relative_precision is None else relative_precision

@@ -29,6 +29,7 @@ from designcalc.density import DensityRule
 from designcalc.edge_models import KERNEL_FAMILIES, BlockModel, EdgeModel, KernelModel
 from designcalc.errors import DesignCalcError, ScenarioError
 from designcalc.outcomes import SPILLOVER_SHAPES, OutcomeModel
+from designcalc.surveyed import TYPE_RULES, SurveyedNetwork, load_surveyed_network
 
 __all__ = [
     "ADJUSTED_ESTIMATORS",
@@ -350,7 +351,11 @@ _EXECUTION_KEYS = ("workers", "cluster", "store")
 _COVARIATE_KEYS = ("name", "r_squared", "through_type")
 _SCENARIO_KEYS = ("name", "description")
 _POPULATION_KEYS = ("units", "max_units")
-_NETWORK_KEYS = ("model", "block_shares", "block_affinity", "kernel", "degree_ratio", "length_scale", "floor", "amplitudes", "expression", "density")
+_NETWORK_KEYS = (
+    "model", "block_shares", "block_affinity", "kernel", "degree_ratio", "length_scale", "floor", "amplitudes", "expression",
+    "density", "edges", "types",
+)
+_BLOCK_AND_KERNEL_KEYS = ("block_shares", "block_affinity", "kernel", "degree_ratio", "length_scale", "floor", "amplitudes", "expression")
 _DENSITY_KEYS = ("mean_degree", "reference_units", "growth_exponent")
 _OUTCOME_KEYS = (
     "kind", "baseline", "type_effect", "block_effects", "noise_sd", "direct_effect", "spillover_effect",
@@ -361,7 +366,9 @@ _ESTIMATOR_KEYS = ("direct", "direct_variance", "spillover", "centre", "eigenvec
 _SIMULATION_KEYS = ("graphs", "assignments_per_graph", "seed", "relative_precision", "max_graphs")
 
 
-def _read_population(top: _Table) -> Population:
+def _read_population(top: _Table, network: EdgeModel) -> Population:
+    if isinstance(network, SurveyedNetwork):
+        return _surveyed_population(top, network)
     t = top.table("population", _POPULATION_KEYS)
     assert t is not None
     units = t.number_list("units", low=4, high=_MAX_UNITS, integer=True)
@@ -374,6 +381,48 @@ def _read_population(top: _Table) -> Population:
     return Population(units=tuple(sorted(units)), max_units=max_units)
 
 
+def _surveyed_population(top: _Table, network: SurveyedNetwork) -> Population:
+    """A surveyed network is the population: its size is the only size (``[population]`` may restate it)."""
+    n = network.n_units
+    t = top.table("population", _POPULATION_KEYS, required=False)
+    if t is not None:
+        units = t.number_list("units", (n,), low=4, high=_MAX_UNITS, integer=True)
+        if tuple(units) != (n,):
+            raise t.error(
+                "units", f"must be the surveyed network's size, {n}: the network is held fixed", received=list(units),
+                hint="leave [population] out; to plan other sizes, fit an edge model to the survey (designcalc fit)",
+            )
+        if t.has("max_units"):
+            raise t.error("max_units", "has no use with a surveyed network (its size is fixed)", hint="remove it")
+        t.finish()
+    return Population(units=(n,), max_units=n)
+
+
+def _read_surveyed(t: _Table, folder: Path) -> tuple[SurveyedNetwork, DensityRule]:
+    raw = t.raw("edges")
+    files = [raw] if isinstance(raw, str) else raw
+    if not isinstance(files, list) or not files or not all(isinstance(f, str) and f.strip() for f in files):
+        raise t.error("edges", "must be an edge-list file name in quotes, or a list of them (one per village)", received=raw)
+    if len(set(files)) != len(files):
+        raise t.error("edges", "names the same file twice", received=raw)
+    types = t.choice("types", TYPE_RULES, "random")
+    for name in _BLOCK_AND_KERNEL_KEYS:
+        if t.has(name):
+            raise t.error(name, 'has no use with model = "surveyed": the network is the survey itself', hint="remove it")
+    if t.has("density"):
+        raise t.error("density", 'has no use with model = "surveyed": the survey fixes the density', hint="remove the [network.density] table")
+    paths = [Path(f).expanduser() if Path(f).expanduser().is_absolute() else folder / f for f in files]
+    try:
+        network = load_surveyed_network(paths, types=types, names=files)
+    except DesignCalcError as exc:
+        raise t.error("edges", str(exc)) from None
+    if network.mean_degree() <= 0:
+        raise t.error("edges", "the surveyed network has no ties: there is nothing to spill over", received=raw)
+    t.finish()
+    # The rule only records the observed level (check and the report show it); nothing is sampled from it.
+    return network, DensityRule(mean_degree=network.mean_degree(), reference_units=network.n_units, growth_exponent=0.0)
+
+
 def _wrap_model_error(t: _Table, key: str, build: Callable[[], Any]) -> Any:
     try:
         return build()
@@ -383,11 +432,16 @@ def _wrap_model_error(t: _Table, key: str, build: Callable[[], Any]) -> Any:
         raise t.error(key, str(exc)) from None
 
 
-def _read_network(top: _Table) -> tuple[EdgeModel, DensityRule]:
+def _read_network(top: _Table, folder: Path) -> tuple[EdgeModel, DensityRule]:
     t = top.table("network", _NETWORK_KEYS)
     assert t is not None
-    model = t.choice("model", ("blocks", "kernel"))
+    model = t.choice("model", ("blocks", "kernel", "surveyed"))
     edge_model: EdgeModel
+    for name in ("edges", "types"):
+        if model != "surveyed" and t.has(name):
+            raise t.error(name, f'belongs to a surveyed network (model = "surveyed"), but model = "{model}"', hint="remove it")
+    if model == "surveyed":
+        return _read_surveyed(t, folder)
     if model == "blocks":
         shares = t.number_list("block_shares", low=0, high=1, low_open=True, allow_scalar=False)
         if abs(sum(shares) - 1) > 1e-6:
@@ -484,7 +538,7 @@ def _read_outcome(top: _Table, network: EdgeModel) -> OutcomeModel:
         _wrap_model_error(t, "type_effect", lambda: OutcomeModel(type_effect=text))
         values["type_effect"] = text
     if t.has("block_effects"):
-        if not isinstance(network, BlockModel):
+        if not isinstance(network, (BlockModel, SurveyedNetwork)):
             raise t.error("block_effects", "needs a block model (network.model = \"blocks\")", hint="use type_effect, an expression in u, for kernels")
         effects = t.number_list("block_effects", low=-big, high=big, allow_scalar=False)
         if len(effects) != network.n_blocks:
@@ -605,7 +659,7 @@ def _read_execution(top: _Table) -> ExecutionSettings:
     return ExecutionSettings(workers, cluster, store)
 
 
-def parse_scenario(text: str, *, source: str = "<scenario>") -> Scenario:
+def parse_scenario(text: str, *, source: str = "<scenario>", folder: str | Path | None = None) -> Scenario:
     """Validate the TOML text of a scenario.
 
     Parameters
@@ -614,6 +668,9 @@ def parse_scenario(text: str, *, source: str = "<scenario>") -> Scenario:
         The scenario's TOML text.
     source
         The file name to quote in error messages.
+    folder
+        Where files the scenario names (a surveyed network's edge lists) are
+        looked for; default the current folder.
 
     Returns
     -------
@@ -636,8 +693,8 @@ def parse_scenario(text: str, *, source: str = "<scenario>") -> Scenario:
         name = meta.text("name", "")
         description = meta.text("description", "")
         meta.finish()
-    population = _read_population(top)
-    network, density = _read_network(top)
+    network, density = _read_network(top, Path(folder) if folder is not None else Path.cwd())
+    population = _read_population(top, network)
     outcome = _read_outcome(top, network)
     design = _read_design(top)
     covariates = _read_covariates(top, outcome, network)
@@ -692,7 +749,7 @@ def load_scenario(path: str | Path) -> Scenario:
         text = raw.decode("utf-8")
     except UnicodeDecodeError:
         raise ScenarioError("is not UTF-8 text", file=str(path), hint="save the scenario as plain UTF-8 text") from None
-    scenario = parse_scenario(text, source=path.name)
+    scenario = parse_scenario(text, source=path.name, folder=path.parent)
     store = scenario.execution.store
     if isinstance(store, str) and not Path(store).expanduser().is_absolute():
         # A project's store sits with its scenario, wherever the command is run from.

@@ -27,7 +27,8 @@ def register(app: typer.Typer) -> None:
         write_figures(figures, lambda: _network_figure(result.scenario))
         s = result.scenario
         console.print(f"[bold]{s.name}[/]  ({s.source}, sha256 {s.sha256[:12]}...)")
-        console.print(f"network: {s.network.describe()}; {s.density.describe()}")
+        density = "" if s.network.kind == "surveyed" else f"; {s.density.describe()}"  # a surveyed network has no rule
+        console.print(f"network: {s.network.describe()}{density}")
         console.print(f"outcome: {s.outcome.describe()}")
         if result.covariate_note:
             console.print(f"covariates: {result.covariate_note}", soft_wrap=True)

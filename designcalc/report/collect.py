@@ -430,11 +430,17 @@ def build_report(
         workers=settings.workers, cluster=cluster, store=store,
     )
     _refuse_partial(mde.partial)
-    size = required_sample_size(
-        solving, graphs=search_graphs, relative_precision=settings.precision, max_units=settings.max_units,
-        batch_size=settings.batch_size, progress=phase("sample size"), workers=settings.workers,
-        cluster=cluster, store=store,
-    )
+    if scenario.network.kind == "surveyed":
+        # The surveyed network fixes the size: there is nothing to search (the key answers give the MDE there).
+        size = SizeResult(scenario.name, (), provenance(scenario), (
+            f"network.model = \"surveyed\": the study size is the surveyed {units[0]} units, so no sample size is solved for",
+        ))
+    else:
+        size = required_sample_size(
+            solving, graphs=search_graphs, relative_precision=settings.precision, max_units=settings.max_units,
+            batch_size=settings.batch_size, progress=phase("sample size"), workers=settings.workers,
+            cluster=cluster, store=store,
+        )
     _refuse_partial(size.partial)
     compare = compare_treatment_probabilities(
         solving, units=[compare_units], batch_size=settings.batch_size, progress=phase("treatment probabilities"),

@@ -46,6 +46,7 @@ from designcalc.report.render import (
     render_markdown,
     reproduce_command,
     scenario_copy_path,
+    surveyed_copies,
 )
 from designcalc.report.tables import report_tables
 
@@ -213,6 +214,8 @@ def _write_all(report: Report, folder: Path, on_file: Callable[[Path], None]) ->
     # The text the scenario was parsed from (its SHA-256 is the provenance's), never a re-read of a
     # file that may have changed or be another file of the same name in the current folder.
     write(scenario_copy_path(report), report.scenario.text.encode("utf-8"))
+    for name, data in surveyed_copies(report):
+        write(name, data)  # the edge lists as read, where the copied scenario looks for them
     write("provenance.json", render_json(report.provenance))
     write("report.md", render_markdown(report, tables, stems))
     write("report.html", render_html(report, tables, svgs))

@@ -24,6 +24,7 @@ __all__ = [
     "design_in_words",
     "latex_escape",
     "scenario_copy_path",
+    "surveyed_copies",
     "render_csv",
     "render_html",
     "render_json",
@@ -56,7 +57,7 @@ def design_in_words(report: Report) -> list[tuple[str, str]]:
     probabilities = ", ".join(f"{p:g}" for p in d.treatment_probabilities)
     lines = [
         ("Population", f"one connected study population (a single network) of {sizes} units, each size planned separately."),
-        ("Network model", f"{s.network.describe()}; {s.density.describe()}."),
+        ("Network model", f"{s.network.describe()}." if s.network.kind == "surveyed" else f"{s.network.describe()}; {s.density.describe()}."),
         ("Outcome model", f"{s.outcome.describe()}; interference runs through the share of a unit's contacts who are treated."),
     ]
     if s.covariates is not None:
@@ -109,6 +110,26 @@ def reproduce_command(report: Report, out: str = "REPORT_DIR") -> str:
     if st.all_tests:
         parts.append("--all-tests")
     return " ".join(parts)
+
+
+def surveyed_copies(report: Report) -> list[tuple[str, bytes]]:
+    """A surveyed network's edge lists, placed beside the scenario copy under the names the scenario gives them.
+
+    Only plain relative names can be placed so (an absolute path or one
+    leaving the folder is not copied; the reproduce line then needs the file
+    where the scenario says).
+    """
+    network = report.scenario.network
+    if network.kind != "surveyed":
+        return []
+    folder = Path(scenario_copy_path(report)).parent
+    out = []
+    for name, data in zip(network.files, network.file_bytes):
+        relative = Path(name)
+        if relative.is_absolute() or ".." in relative.parts:
+            continue
+        out.append(((folder / relative).as_posix(), data))
+    return out
 
 
 def scenario_copy_path(report: Report) -> str:

@@ -125,6 +125,7 @@ def key_answers_table(report: Report) -> Table:
         *(Column(f"MDE at {n} units", f"mde_at_{n}", "sig", 3) for n in units),
     )
     rows = []
+    missing = "size fixed (surveyed network)" if report.scenario.network.kind == "surveyed" else "not computed"
     for key in report.tests:
         for pi in report.scenario.design.treatment_probabilities:
             size = report.size.select(estimand=key[0], estimator=key[1], variance_estimator=key[2], treatment_probability=pi)
@@ -136,7 +137,7 @@ def key_answers_table(report: Report) -> Table:
             rows.append((
                 *key, pi,
                 s.required_units if s else None, s.units_low if s else None, s.units_high if s else None,
-                s.status if s else "not computed", *mdes,
+                s.status if s else missing, *mdes,
             ))
     return Table(
         "key-answers", "Required size and minimum detectable effect per estimand",
