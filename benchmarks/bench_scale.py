@@ -50,8 +50,26 @@ from designcalc.estimators import treated_neighbour_counts  # noqa: E402
 DEMO = ROOT / "scenarios" / "lake_orrin_savings.toml"
 
 
-def build_scenario(units: int, assignments: int):
+# A 3-block model whose blocks all have the same expected degree (the demo's blocks differ: 22, 19 and 17
+# at mean degree 20, which puts the adjacency's noise edge right at the eigenvector rule's threshold).
+BALANCED_NETWORK = """block_shares = [0.34, 0.33, 0.33]
+block_affinity = [[5.0, 1.0, 1.0],
+                  [1.0, 5.0, 1.0],
+                  [1.0, 1.0, 5.0]]"""
+# A typical plan: one direct test and the two recommended spillover estimators (no covariate adjustment).
+STANDARD_ESTIMATORS = """direct = ["hajek"]
+direct_variance = ["neyman"]
+spillover = ["pc_balancing_corrected", "centred_ht"]"""
+
+
+def build_scenario(units: int, assignments: int, model: str = "demo", estimators: str = "demo"):
     text = DEMO.read_text()
+    if model == "balanced":
+        start, end = text.index("block_shares ="), text.index("[network.density]")
+        text = text[:start] + BALANCED_NETWORK + "\n\n" + text[end:]
+    if estimators == "standard":
+        start, end = text.index('direct = ["hajek"'), text.index("centre = 20.0")
+        text = text[:start] + STANDARD_ESTIMATORS + "\n" + text[end:]
     text = text.replace("units = [600, 1200, 2400]", f"units = [{units}]")
     text = text.replace("mean_degree = 10 ", "mean_degree = 20 ")
     text = text.replace("graphs = 40", "graphs = 1")
@@ -91,12 +109,17 @@ def floor_seconds(scenario, prep, units: int, assignments: int) -> dict[str, flo
     _, edges = _timed(edge_draws)
     W, draws = _timed(assignment_draws)
     _, products = _timed(treated_neighbour_counts, prep, W)
-    return {"edge draws": edges, "A @ W": products, "assignment and noise draws": draws}
+    # Every neighbour-sum estimator needs A @ Y for each outcome model simulated (the model and one null
+    # per estimand): real-valued, float64 products no replicate can skip.
+    Y = rng.standard_normal((units, assignments))
+    runs = len(engine.power_runs(scenario))
+    _, outcome_products = _timed(lambda: [prep.adjacency @ Y for _ in range(runs)])
+    return {"edge draws": edges, "A @ W": products, "A @ Y": outcome_products, "assignment and noise draws": draws}
 
 
-def run_child(units: int, assignments: int) -> dict[str, object]:
+def run_child(units: int, assignments: int, model: str, estimators: str) -> dict[str, object]:
     """One size in this process: engine phases, then the floor on the same graph."""
-    scenario = build_scenario(units, assignments)
+    scenario = build_scenario(units, assignments, model, estimators)
     point = engine.DesignPoint(units, scenario.design.treatment_probabilities[0])
     phases: dict[str, float] = {}
     keep: dict[str, object] = {}
@@ -134,8 +157,11 @@ def run_child(units: int, assignments: int) -> dict[str, object]:
     }
 
 
-def run_size(units: int, assignments: int, *, time_v: bool) -> dict[str, object]:
-    command = [sys.executable, str(Path(__file__).resolve()), "--child", str(units), "--assignments", str(assignments)]
+def run_size(units: int, assignments: int, model: str, estimators: str, *, time_v: bool) -> dict[str, object]:
+    command = [
+        sys.executable, str(Path(__file__).resolve()), "--child", str(units), "--assignments", str(assignments),
+        "--model", model, "--estimators", estimators,
+    ]
     wrapper = shutil.which("time", path="/usr/bin") if time_v else None
     if wrapper:
         command = [wrapper, "-v", *command]
@@ -145,25 +171,27 @@ def run_size(units: int, assignments: int, *, time_v: bool) -> dict[str, object]
     result = json.loads(done.stdout.strip().splitlines()[-1])
     found = re.search(r"Maximum resident set size \(kbytes\): (\d+)", done.stderr)
     result["time_v_rss_bytes"] = int(found.group(1)) * 1024 if found else None
+    result["model"], result["estimator_set"] = model, estimators
     return result
 
 
 def report(results: list[dict[str, object]]) -> None:
     print(
-        f"{'units':>9} {'B':>3} {'k':>3} | {'floor s':>8} (edges, A@W, draws) | {'engine s':>8} "
-        f"(sampling, preparation, estimation, rest) | {'ratio':>5} | {'peak RSS':>9} {'time -v RSS':>11}"
+        f"{'model':>8} {'tests':>8} {'units':>9} {'B':>3} {'k':>3} | {'floor s':>7} (edges, A@W, A@Y, draws) | {'engine s':>8} "
+        f"(sampling, preparation, estimation, rest) | per replicate: {'floor':>6} {'engine':>7} {'ratio':>5} | {'peak RSS':>9} {'time -v RSS':>11}"
     )
     for r in results:
         floor = r["floor"]
         phases = r["phases"]
         floor_total = sum(floor.values())
+        B = r["assignments"]
         rss_v = f"{r['time_v_rss_bytes'] / 1e9:.2f} GB" if r["time_v_rss_bytes"] else "-"
         print(
-            f"{r['units']:>9} {r['assignments']:>3} {r['eigenvectors']:>3} | {floor_total:8.2f} "
-            f"({floor['edge draws']:.2f}, {floor['A @ W']:.2f}, {floor['assignment and noise draws']:.2f}) | "
+            f"{r['model']:>8} {r['estimator_set']:>8} {r['units']:>9} {B:>3} {r['eigenvectors']:>3} | {floor_total:7.2f} "
+            f"({floor['edge draws']:.2f}, {floor['A @ W']:.2f}, {floor['A @ Y']:.2f}, {floor['assignment and noise draws']:.2f}) | "
             f"{r['engine']:8.2f} ({phases['sampling']:.2f}, {phases['preparation']:.2f}, "
-            f"{phases['estimation']:.2f}, {phases['rest']:.2f}) | {r['engine'] / floor_total:5.1f} | "
-            f"{r['peak_rss_bytes'] / 1e9:7.2f} GB {rss_v:>11}"
+            f"{phases['estimation']:.2f}, {phases['rest']:.2f}) | {'':>15}{floor_total / B:6.3f} {r['engine'] / B:7.3f} "
+            f"{r['engine'] / floor_total:5.1f} | {r['peak_rss_bytes'] / 1e9:7.2f} GB {rss_v:>11}"
         )
     print()
     print("Above the floor, and why:")
@@ -188,13 +216,19 @@ def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--sizes", type=int, nargs="+", default=[10_000, 100_000, 1_000_000], help="network sizes (default 10^4 10^5 10^6)")
     parser.add_argument("--assignments", type=int, default=1, help="assignments per graph (default 1: one replicate)")
+    parser.add_argument("--model", choices=("demo", "balanced", "both"), default="both", help="the demo's block model, one with equal block degrees, or both (default)")
+    parser.add_argument("--estimators", choices=("demo", "standard"), default="demo", help="the demo's 17 tests with its covariate, or a standard plan (hajek/neyman, corrected PC, centred HT)")
     parser.add_argument("--no-time-v", action="store_true", help="do not wrap the 10^6 run in /usr/bin/time -v")
     parser.add_argument("--child", type=int, default=None, help=argparse.SUPPRESS)
     args = parser.parse_args()
     if args.child is not None:
-        print(json.dumps(run_child(args.child, args.assignments)))
+        print(json.dumps(run_child(args.child, args.assignments, args.model, args.estimators)))
         return
-    results = [run_size(n, args.assignments, time_v=not args.no_time_v and n >= 1_000_000) for n in args.sizes]
+    models = ("demo", "balanced") if args.model == "both" else (args.model,)
+    results = [
+        run_size(n, args.assignments, model, args.estimators, time_v=not args.no_time_v and n >= 1_000_000)
+        for model in models for n in args.sizes
+    ]
     report(results)
 
 

@@ -88,7 +88,7 @@ def _sub(base: str, old: str, new: str) -> str:
 
 
 def test_demo_scenarios_load() -> None:
-    """Both demo scenarios load into a Scenario with the model kind their file states."""
+    """Every demo scenario loads into a Scenario with the model kind its file states."""
     assert len(DEMOS) >= 2
     kinds = set()
     for path in DEMOS:
@@ -97,7 +97,7 @@ def test_demo_scenarios_load() -> None:
         assert scenario.source == path.name
         assert len(scenario.sha256) == 64
         kinds.add(scenario.network.kind)
-    assert kinds == {"blocks", "kernel"}
+    assert kinds == {"blocks", "kernel", "surveyed"}
 
 
 def test_base_texts_are_valid() -> None:
