@@ -33,7 +33,7 @@ from contextlib import closing
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
-from designcalc.engine import DesignPoint, GraphDraws, Run, power_runs, simulate_graph
+from designcalc.engine import DesignPoint, GraphDraws, Run, columns_per_batch, power_runs, simulate_graph
 from designcalc.errors import DesignCalcError
 from designcalc.scenario import Scenario
 
@@ -259,11 +259,24 @@ def _through_store(
         store.touch(fingerprint, reused)
 
 
+def _check_memory_here(scenario: Scenario, tasks: Sequence[GraphTask], workers: int, job: GraphJob) -> None:
+    """Stop before any worker starts when the graphs, one per worker at a time, would not fit in this machine's memory."""
+    from designcalc.memory import available_memory_bytes, check_memory
+
+    available = available_memory_bytes()
+    if available is None:
+        return
+    for n in sorted({point.units for point, _ in tasks}):
+        check_memory(scenario, n, batch_size=columns_per_batch(n, job.batch_size), available=available, workers=min(workers, len(tasks)))
+
+
 def _compute(
     scenario: Scenario, tasks: Sequence[GraphTask], workers: int, job: GraphJob, cluster: Cluster | None, salvage: Salvage,
 ) -> Iterator[GraphDraws]:
     if not tasks:
         return
+    if cluster is None:
+        _check_memory_here(scenario, tasks, workers, job)
     if cluster is not None:
         yield from _simulate_on_dask(scenario, tasks, cluster, job, salvage)
         return

@@ -225,7 +225,7 @@ def available_memory_bytes() -> int | None:
 
 
 def check_memory(
-    scenario: Scenario, units: int, *, batch_size: int = 16, available: int | None = None
+    scenario: Scenario, units: int, *, batch_size: int = 16, available: int | None = None, workers: int = 1
 ) -> MemoryEstimate:
     """Raise ``DesignCalcError`` when one graph at ``units`` units would not fit in memory.
 
@@ -240,6 +240,9 @@ def check_memory(
     available
         Available bytes; read from the operating system when omitted (if it
         cannot say, the check passes).
+    workers
+        Graphs simulated at the same time on this machine (local worker
+        processes); each gets an equal share of ``available``.
 
     Returns
     -------
@@ -257,7 +260,7 @@ def check_memory(
     estimate = estimate_graph_memory(scenario, units, batch_size=batch_size)
     if available is None:
         available = available_memory_bytes()
-    if available is None or estimate.peak_bytes <= _USABLE_SHARE * available:
+    if available is None or estimate.peak_bytes * max(1, workers) <= _USABLE_SHARE * available:
         return estimate
     density = scenario.density
     phase = estimate.peak_phase
@@ -277,7 +280,12 @@ def check_memory(
             f"{' and covariates' if scenario.n_covariates else ''} (simulation.assignments_per_graph = {estimate.assignments})"
         )
         fix = "lower simulation.assignments_per_graph (and raise simulation.graphs to keep the replicates)"
+    if workers > 1:
+        share = f"{format_bytes(available)} are available to {workers} worker processes ({format_bytes(available // workers)} each)"
+        fix += ", or fewer workers (--workers)"
+    else:
+        share = f"{format_bytes(available)} are available"
     raise DesignCalcError(
         f"{scenario.source}: population.units = {units}: one graph needs about {format_bytes(estimate.peak_bytes)} "
-        f"of memory ({phase}) but {format_bytes(available)} are available; {cause}. Fix: {fix}."
+        f"of memory ({phase}) but {share}; {cause}. Fix: {fix}."
     )

@@ -186,3 +186,34 @@ def test_graphs_from_the_large_size_on_use_single_precision_by_default() -> None
     assert prepare_graph(adjacency, n_eigenvectors=3).eigen_method == "eigsh_single"
     smaller, _ = _three_block_graph(LARGE_GRAPH_UNITS - 1, seed=9)
     assert prepare_graph(smaller, n_eigenvectors=3).eigen_method == "eigsh"
+
+
+def test_large_networks_use_fewer_columns_per_batch_and_the_same_numbers(monkeypatch):
+    """At 10^6 units a batch holds 4 columns, not 16; forcing one column per batch changes no number."""
+    from designcalc import load_scenario
+    from designcalc.engine import DesignPoint, columns_per_batch, simulate_graph
+
+    assert columns_per_batch(1_000_000, 16) == 4 and columns_per_batch(10_000, 16) == 16 and columns_per_batch(10**8, 16) == 1
+    s = load_scenario(Path(__file__).parents[1] / "scenarios" / "lake_orrin_savings.toml")
+    point = DesignPoint(600, 0.5)
+    wide = simulate_graph(s, point, 0)
+    monkeypatch.setattr("designcalc.engine.BATCH_CELLS", 600)  # one column per batch at 600 units
+    narrow = simulate_graph(s, point, 0)
+    for label, run in wide.runs.items():
+        for key, values in run.estimates.items():
+            assert (values == narrow.runs[label].estimates[key]).all(), key
+            assert (run.standard_errors[key] == narrow.runs[label].standard_errors[key]).all(), key
+
+
+def test_a_pool_that_would_not_fit_stops_before_starting_and_names_the_workers():
+    """Two graphs at a time need twice the memory: refused in the parent, the message names --workers."""
+    from designcalc import load_scenario
+    from designcalc.errors import DesignCalcError
+    from designcalc.memory import check_memory, estimate_graph_memory
+
+    s = load_scenario(Path(__file__).parents[1] / "scenarios" / "lake_orrin_savings.toml")
+    need = estimate_graph_memory(s, 2400).peak_bytes
+    check_memory(s, 2400, available=4 * need, workers=2)  # fits: two graphs, half the memory
+    with pytest.raises(DesignCalcError, match=r"available to 2 worker processes.*fewer workers \(--workers\)"):
+        check_memory(s, 2400, available=int(2.0 * need), workers=2)
+    check_memory(s, 2400, available=int(2.0 * need), workers=1)  # one at a time fits (90% of it usable)
