@@ -33,7 +33,7 @@ from contextlib import closing
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
-from designcalc.engine import DesignPoint, GraphDraws, Run, columns_per_batch, power_runs, simulate_graph
+from designcalc.engine import DesignPoint, GraphCache, GraphDraws, Run, columns_per_batch, power_runs, simulate_graph
 from designcalc.errors import DesignCalcError
 from designcalc.scenario import Scenario
 
@@ -59,9 +59,9 @@ class GraphJob:
     batch_size: int = 16
     keep_units: bool = False
 
-    def simulate(self, scenario: Scenario, task: GraphTask) -> GraphDraws:
+    def simulate(self, scenario: Scenario, task: GraphTask, cache: GraphCache | None = None) -> GraphDraws:
         point, g = task
-        return simulate_graph(scenario, point, g, runs=self.runs, batch_size=self.batch_size, keep_units=self.keep_units)
+        return simulate_graph(scenario, point, g, runs=self.runs, batch_size=self.batch_size, keep_units=self.keep_units, cache=cache)
 
 
 _WORKER_SCENARIO: Scenario | None = None
@@ -192,6 +192,7 @@ def simulate_graphs(
     cluster: Cluster | None = None,
     store: ResultStore | None = None,
     keep_units: bool = False,
+    cache: GraphCache | None = None,
 ) -> Iterator[GraphDraws]:
     """Yield ``simulate_graph`` for each task, in task order, on ``workers`` processes or a dask cluster.
 
@@ -205,7 +206,9 @@ def simulate_graphs(
     ``store`` (``designcalc.store.ResultStore``), stored graphs are read, not
     computed, and each computed graph is stored as it arrives.
     ``keep_units`` keeps each graph's degrees and types in its draws (as
-    ``simulate_graph``).
+    ``simulate_graph``).  ``cache`` (an ``engine.GraphCache``) is used for
+    the graphs computed in this process (``workers=1``, no cluster): a
+    solver's later passes then skip sampling and eigenvectors.
 
     Examples
     --------
@@ -221,13 +224,14 @@ def simulate_graphs(
     workers = check_workers(workers)
     job = GraphJob(power_runs(scenario) if runs is None else tuple(runs), batch_size, keep_units)
     if store is None:
-        yield from _compute(scenario, tasks, workers, job, cluster, None)
+        yield from _compute(scenario, tasks, workers, job, cluster, None, cache)
         return
-    yield from _through_store(scenario, tasks, workers, job, cluster, store)
+    yield from _through_store(scenario, tasks, workers, job, cluster, store, cache)
 
 
 def _through_store(
     scenario: Scenario, tasks: Sequence[GraphTask], workers: int, job: GraphJob, cluster: Cluster | None, store: ResultStore,
+    cache: GraphCache | None,
 ) -> Iterator[GraphDraws]:
     from designcalc.store import stored_or_computed
 
@@ -242,14 +246,14 @@ def _through_store(
     missing = [task for task, have in zip(tasks, stored) if not have]
     reused: list[GraphTask] = []
     try:
-        with closing(_compute(scenario, missing, workers, job, cluster, keep)) as computed:
+        with closing(_compute(scenario, missing, workers, job, cluster, keep, cache)) as computed:
             for task, have in zip(tasks, stored):
                 draws = store.fetch(fingerprint, *task) if have else None
                 if draws is not None:
                     store.reused += 1
                     reused.append(task)
                 elif have:  # stored but unreadable: compute it again here and replace it
-                    draws = job.simulate(scenario, task)
+                    draws = job.simulate(scenario, task, cache)
                     keep(task, draws)
                 else:
                     draws = next(computed)
@@ -272,6 +276,7 @@ def _check_memory_here(scenario: Scenario, tasks: Sequence[GraphTask], workers: 
 
 def _compute(
     scenario: Scenario, tasks: Sequence[GraphTask], workers: int, job: GraphJob, cluster: Cluster | None, salvage: Salvage,
+    cache: GraphCache | None = None,
 ) -> Iterator[GraphDraws]:
     if not tasks:
         return
@@ -282,7 +287,7 @@ def _compute(
         return
     if workers == 1 or len(tasks) <= 1:
         for task in tasks:
-            yield job.simulate(scenario, task)
+            yield job.simulate(scenario, task, cache)
         return
     # fork where the platform has it: the scenario reaches the workers without pickling and
     # they start in milliseconds; elsewhere spawn, which pickles it once per worker.

@@ -49,7 +49,6 @@ from designcalc.engine import (
     design_points,
     null_label,
     planned_keys,
-    simulate_graph,
 )
 from designcalc.errors import ModelError
 from designcalc.estimands import exact_estimands
@@ -375,14 +374,13 @@ def minimum_detectable_effects(
 
 
 class _GraphSource:
-    """Where a pass's graphs come from: this process with a graph cache, or ``execution.simulate_graphs``.
+    """Where a pass's graphs come from: ``execution.simulate_graphs``, many graphs per call.
 
-    In one process without a store, the prepared graphs (network, eigenvectors,
-    assignments) are cached between the passes of a design point.  With
-    workers, a cluster or a store each pass goes through
-    ``simulate_graphs``: graphs are prepared again in the workers (about a
-    fifth of a graph's time on the demo, measured), but run in parallel and
-    are stored; the numbers are the same either way.
+    In one process the prepared graphs (network, eigenvectors, assignments)
+    are cached between the passes of a design point.  With workers or a
+    cluster, graphs are prepared again in the workers (about a fifth of a
+    graph's time on the demo, measured) but run in parallel.  A store, if
+    given, is read and written either way; the numbers are the same.
     """
 
     def __init__(
@@ -390,20 +388,14 @@ class _GraphSource:
         tick: Callable[[], None],
     ) -> None:
         self.scenario, self.batch_size, self.workers, self.cluster, self.store, self.tick = scenario, batch_size, workers, cluster, store, tick
-        self.in_process = workers == 1 and cluster is None and store is None
         self.cache = GraphCache()
 
     def simulate(self, point: DesignPoint, runs: list[Run], indices: range, keep_units: bool) -> list[GraphDraws]:
         out = []
-        if self.in_process:
-            for g in indices:
-                out.append(simulate_graph(self.scenario, point, g, runs=runs, batch_size=self.batch_size, cache=self.cache, keep_units=keep_units))
-                self.tick()
-            return out
         tasks = [(point, g) for g in indices]
         with closing(simulate_graphs(
             self.scenario, tasks, workers=self.workers, batch_size=self.batch_size, runs=runs, cluster=self.cluster,
-            store=self.store, keep_units=keep_units,
+            store=self.store, keep_units=keep_units, cache=self.cache,
         )) as stream:
             for draws in stream:
                 out.append(draws)

@@ -264,7 +264,10 @@ def check_memory(
         return estimate
     density = scenario.density
     phase = estimate.peak_phase
-    if phase in ("sampling", "eigenvectors") or estimate.expected_edges * 40 > estimate.peak_bytes / 2:
+    if scenario.network.kind == "surveyed" and phase in ("sampling", "eigenvectors"):
+        cause = f"the surveyed network has about {estimate.expected_edges:.3g} ties ({', '.join(scenario.network.files)})"
+        fix = "plan on a part of the survey (fewer villages in network.edges), or fit an edge model (designcalc fit) and plan smaller networks"
+    elif phase in ("sampling", "eigenvectors") or estimate.expected_edges * 40 > estimate.peak_bytes / 2:
         cause = (
             f"the network has about {estimate.expected_edges:.3g} edges (network.density: mean_degree = "
             f"{density.mean_degree:g} at reference_units = {density.reference_units}, growth_exponent = "

@@ -3,10 +3,14 @@
 from __future__ import annotations
 
 import datetime as _dt
+import hashlib
 import io
 import json
 import os
+import sqlite3
 import sys
+from collections.abc import Iterator
+from contextlib import contextmanager
 from pathlib import Path
 from typing import Annotated
 
@@ -14,7 +18,6 @@ import typer
 
 from designcalc.cli.output import OutputFormat, check_format, new_table
 from designcalc.errors import DesignCalcError
-from designcalc.scenario import load_scenario
 from designcalc.store import ResultStore, StoredSet, default_store_path
 
 StoreFile = Annotated[
@@ -38,6 +41,24 @@ def _open(path: Path | None) -> ResultStore:
     return ResultStore(path)
 
 
+@contextmanager
+def _using(store: ResultStore) -> Iterator[ResultStore]:
+    """The store, with any SQLite failure on the way (a damaged page, a lock held too long) said as a user error."""
+    try:
+        with store:
+            yield store
+    except sqlite3.Error as exc:
+        raise DesignCalcError(f"results store {store.path}: {exc}; if it is damaged, delete it (only stored graphs are lost)") from None
+
+
+def _scenario_sha256(path: Path) -> str:
+    """The SHA-256 a scenario's provenance gives, of its text as it is now (without validating it again)."""
+    try:
+        return hashlib.sha256(path.read_bytes().decode("utf-8").encode("utf-8")).hexdigest()
+    except (OSError, UnicodeDecodeError) as exc:
+        raise DesignCalcError(f"--scenario {path}: cannot be read ({exc})") from None
+
+
 def _chosen(store: ResultStore, prefixes: list[str] | None, scenario: Path | None) -> list[StoredSet]:
     chosen: dict[str, StoredSet] = {}
     for prefix in prefixes or ():
@@ -48,7 +69,7 @@ def _chosen(store: ResultStore, prefixes: list[str] | None, scenario: Path | Non
             raise DesignCalcError(f"--set {prefix}: {len(found)} sets start so; give more of the fingerprint")
         chosen.update((s.fingerprint, s) for s in found)
     if scenario is not None:
-        sha = load_scenario(scenario).sha256
+        sha = _scenario_sha256(scenario)
         found = [s for s in store.sets() if s.scenario_sha256 == sha]
         if not found:
             raise DesignCalcError(f"--scenario {scenario}: nothing stored from this scenario's current text")
@@ -80,7 +101,7 @@ def register(app: typer.Typer) -> None:
         from designcalc.cli.main import stdout_console
 
         check_format(output_format)
-        with _open(store) as opened:
+        with _using(_open(store)) as opened:
             sets = opened.sets()
             where = opened.path
         if output_format == "json":
@@ -126,7 +147,10 @@ def register(app: typer.Typer) -> None:
             raise DesignCalcError(f"--out {out}: is a folder; give a file name")
         if not out.absolute().parent.is_dir():
             raise DesignCalcError(f"--out {out}: the folder {out.absolute().parent} does not exist")
-        with _open(store) as opened:
+        source = store if store is not None else default_store_path()
+        if out.exists() and source.exists() and out.resolve() == source.resolve():
+            raise DesignCalcError(f"--out {out}: is the results store itself; give another file name")
+        with _using(_open(store)) as opened:
             chosen = _chosen(opened, sets, scenario) if (sets or scenario) else opened.sets()
             temporary = out.with_name(f".{out.name}.partial")
             try:
@@ -151,7 +175,7 @@ def register(app: typer.Typer) -> None:
 
         if not (sets or scenario or stale or everything or unused_days is not None):
             raise DesignCalcError("say what to prune: --set FINGERPRINT, --scenario FILE, --stale, --unused-days N or --all")
-        with _open(store) as opened:
+        with _using(_open(store)) as opened:
             chosen = {s.fingerprint for s in _chosen(opened, sets, scenario)}
             every = opened.sets()
             if stale:
@@ -161,5 +185,5 @@ def register(app: typer.Typer) -> None:
             before = None
             if unused_days is not None:
                 before = (_dt.datetime.now(_dt.UTC) - _dt.timedelta(days=unused_days)).isoformat(timespec="seconds")
-            removed_sets, removed_blocks = opened.prune(sorted(chosen), unused_before=before)
+            removed_sets, removed_blocks = opened.prune(sorted(chosen), unused_before=before, everything=everything)
         stderr_console().print(f"removed {removed_blocks} stored graphs ({removed_sets} sets emptied) from {opened.path}")
