@@ -135,6 +135,10 @@ def check_scenario(scenario: Scenario) -> ScenarioCheck:
                 f"clipped and the realised mean degree falls {density.shortfall:.1%} short of the target "
                 f"{density.target_mean_degree:.4g}"
             )
+        if not sizes:
+            from designcalc.measure import measurement_warnings  # lazy: measure imports the power engine
+
+            warnings.extend(measurement_warnings(scenario))  # once, not per size
         isolated = expected_share_isolated(model, density.rho, n)
         if isolated > 0.05:
             warnings.append(f"n = {n}: about {isolated:.1%} of units will have no contacts; they add nothing to the spillover effect")

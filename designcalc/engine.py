@@ -16,7 +16,17 @@ Random streams (layout version ``STREAM_LAYOUT_VERSION``) form a
 * assignment and noise: key (1, units, round(pi * 1e9), graph index) ->
   children [assignment, noise, covariates]; the third child (the baseline
   covariates' own noise) is drawn only when the scenario states covariates,
-  and spawning it leaves the first two streams unchanged.
+  and spawning it leaves the first two streams unchanged;
+* the network survey (only with a ``[measurement]`` table): key (3, units,
+  graph index) -> one stream for ``measurement.observe_network``.  A survey
+  happens once per graph, before assignment, so every treatment probability
+  sees the same observed network; scenarios without ``[measurement]`` never
+  touch it, so their numbers are those of layout version 1.  (Family 2 is
+  used by ``designcalc.diagnostics``.)
+
+With a measurement model, outcomes and exact estimands use the true network
+and every estimator (exposures, eigenvectors, HT and PC weights, HAC
+dependency) the observed one (METHODS.md §7).
 
 So a result never depends on how work is split, on ``batch_size``, or on
 which estimators are planned.
@@ -49,6 +59,7 @@ from designcalc.estimators import (
     treated_neighbour_counts,
     treated_neighbour_fraction,
 )
+from designcalc.measurement import ObservedNetwork, inclusion_weights, observe_network
 from designcalc.memory import check_memory
 from designcalc.networks import SampledNetwork, kernel_grid_cells, sample_network
 from designcalc.outcomes import OutcomeModel
@@ -74,6 +85,7 @@ __all__ = [
     "GraphCache",
     "control_variance",
     "TWO_HOP_MAX_UNITS",
+    "observed_network",
 ]
 
 STREAM_LAYOUT_VERSION = 1
@@ -255,6 +267,19 @@ def _graph_streams(entropy: int, units: int, graph_index: int) -> tuple[np.rando
     return np.random.default_rng(types), np.random.default_rng(graph)
 
 
+def _measurement_stream(entropy: int, units: int, graph_index: int) -> np.random.Generator:
+    # Family 3 (module docstring): one survey per graph, whatever the treatment probability.
+    return np.random.default_rng(np.random.SeedSequence(entropy, spawn_key=(3, units, graph_index)))
+
+
+def observed_network(scenario: Scenario, net: SampledNetwork, units: int, graph_index: int) -> ObservedNetwork | None:
+    """The survey of graph ``graph_index`` the engine draws (None without ``[measurement]``)."""
+    if scenario.measurement is None:
+        return None
+    weights = getattr(scenario.network, "weights", None) if scenario.measurement.cap_rule == "strongest" else None
+    return observe_network(net.adjacency, scenario.measurement, _measurement_stream(scenario.simulation.seed, units, graph_index), weights=weights)
+
+
 def _assignment_streams(
     entropy: int, point: DesignPoint, graph_index: int
 ) -> tuple[np.random.Generator, np.random.Generator, np.random.Generator]:
@@ -281,6 +306,7 @@ def _run_estimators(
     failures: dict[str, str] | None = None,
     covariates: np.ndarray | None = None,
     exposure: Callable[[], np.ndarray] | None = None,
+    ht_prep: GraphPreparation | None = None,
 ) -> dict[tuple[str, str, str], EstimateBatch]:
     """The estimates of ``keys`` on one assignment batch; each estimator runs at most once.
 
@@ -290,6 +316,9 @@ def _run_estimators(
     covariate-residualised outcomes (the exposure regression adds them as
     regressors instead).  ``exposure()`` gives the batch's treated-neighbour
     fraction, computed once for every run and both exposure regressions.
+    ``ht_prep`` (an augmented survey's inclusion-weighted network,
+    ``measurement.inclusion_weights``) replaces ``prep`` in the centred HT
+    spillover estimator.
     """
     failures = {} if failures is None else failures
     if exposure is None:
@@ -336,7 +365,7 @@ def _run_estimators(
 
     def _unadjusted(name: str, outcomes: np.ndarray) -> EstimateBatch:
         if name == "centred_ht":
-            return estimate_spillover_ht(prep, W, outcomes, treatment_probability=pi, centre=plan.centre)
+            return estimate_spillover_ht(ht_prep or prep, W, outcomes, treatment_probability=pi, centre=plan.centre)
         if name == "pc_balancing":
             return estimate_spillover_pc(prep, W, outcomes, treatment_probability=pi)
         if name == "pc_balancing_corrected":
@@ -369,6 +398,11 @@ class _PreparedGraph:
     noise_all: np.ndarray
     covariates_all: np.ndarray | None = None  # (n, B, K) baseline covariates, when the scenario states any
     moments: ExposureMoments | None = None
+    # With a measurement model: the true network in float32 (outcomes use it; ``prep`` is the observed one),
+    # the survey, and the inclusion-weighted preparation of the centred HT estimator (augmented surveys).
+    true_single: object | None = None
+    observed: ObservedNetwork | None = None
+    ht_prep: GraphPreparation | None = None
 
 
 def _estimands(g: _PreparedGraph, model: OutcomeModel, pi: float) -> Estimands:
@@ -390,10 +424,13 @@ def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int, batch_siz
     if scenario.network.kind == "kernel":
         bounds = scenario.network.cell_bounds(kernel_grid_cells(n))
     net = sample_network(scenario.network, scenario.density, n, types_rng=types_rng, graph_rng=graph_rng, cell_bounds=bounds)
-    degrees = net.degrees
     theta = scenario.outcome.type_values(net.types, net.blocks)
+    # The analyst's network: the survey's when the scenario measures it (METHODS.md §7), else the true one.
+    observed = observed_network(scenario, net, n, graph_index)
+    analysed = observed.adjacency if observed is not None else net.adjacency
+    degrees = observed.degrees if observed is not None else net.degrees
     prep = prepare_graph(
-        net.adjacency,
+        analysed,
         n_eigenvectors=scenario.estimators.eigenvectors,
         mean_degree_hint=float(degrees.mean()) if n else 0.0,
         two_hop="two_hop" in scenario.estimators.direct_variance and n <= TWO_HOP_MAX_UNITS,
@@ -412,7 +449,13 @@ def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int, batch_siz
         # outcome; they are the same for every run (common random numbers).
         zeta = latent_individual_scores(scenario.outcome.kind, noise_all)
         covariates_all = draw_covariates(scenario.covariates, theta, zeta, covariate_rng)
-    return _PreparedGraph(net, theta, prep, W_all, noise_all, covariates_all)
+    true_single = ht_prep = None
+    if observed is not None:
+        true_single = net.adjacency.astype(np.float32)
+        if scenario.measurement.augmented:
+            # Only the HT estimator reads these fields: adjacency (weighted) and n_units.
+            ht_prep = replace(prep, adjacency=inclusion_weights(observed, scenario.measurement))
+    return _PreparedGraph(net, theta, prep, W_all, noise_all, covariates_all, true_single=true_single, observed=observed, ht_prep=ht_prep)
 
 
 def example_network(scenario: Scenario, point: DesignPoint, graph_index: int = 0) -> tuple[SampledNetwork, np.ndarray]:
@@ -455,7 +498,9 @@ def _footprint(prepared: _PreparedGraph) -> int:
     """
     prep = prepared.prep
     values = [getattr(prep, f) for f in getattr(prep, "__dataclass_fields__", {})]
-    values += [prepared.covariates_all, prepared.W_all, prepared.noise_all, prepared.net.adjacency, prepared.theta]
+    values += [prepared.covariates_all, prepared.W_all, prepared.noise_all, prepared.net.adjacency, prepared.theta, prepared.true_single]
+    if prepared.ht_prep is not None:
+        values.append(prepared.ht_prep.adjacency)
     seen: dict[tuple[int, int], int] = {}
     for value in values:
         for array in _buffers(value):
@@ -570,7 +615,12 @@ def _simulate_graph(
         # One exact sparse product per batch (float32 counts, estimators.treated_neighbour_counts)
         # serves the outcomes and every exposure regression of every run.
         counts = treated_neighbour_counts(g.prep, W)
-        X = counts / safe_degrees
+        if g.true_single is not None:
+            # Outcomes happen on the true network; ``counts`` (the estimators' exposure) on the observed one.
+            # 0/1 products are integers below 2^24, exact in float32 (estimators.treated_neighbour_counts).
+            X = (g.true_single @ np.ascontiguousarray(W, dtype=np.float32)).astype(np.float64) / safe_degrees
+        else:
+            X = counts / safe_degrees
         exposure: list[np.ndarray] = []
 
         def batch_exposure(W: np.ndarray = W, counts: np.ndarray = counts, exposure: list[np.ndarray] = exposure) -> np.ndarray:
@@ -582,7 +632,7 @@ def _simulate_graph(
             if not run_keys[run.label]:
                 continue  # a run kept for its exact estimands only
             Y = _outcomes(run.model, g.theta, W, X, noise)
-            batches = _run_estimators(scenario, g.prep, W, Y, pi, run_keys[run.label], draws.failures, C, batch_exposure)
+            batches = _run_estimators(scenario, g.prep, W, Y, pi, run_keys[run.label], draws.failures, C, batch_exposure, g.ht_prep)
             chunks[run.label].append(({k: v.estimate for k, v in batches.items()}, {k: v.standard_error for k, v in batches.items()}))
     for run in runs:
         if not run_keys[run.label]:

@@ -474,7 +474,9 @@ def _settled(records: Sequence[PowerRecord], target: float, precision: float) ->
 
 
 def _scenario_warnings(scenario: Scenario) -> list[str]:
-    out = []
+    from designcalc.measure import measurement_warnings
+
+    out = measurement_warnings(scenario)
     skipped = sorted({n for n in scenario.population.units if dropped_keys(scenario, n)})
     if skipped:
         out.append(

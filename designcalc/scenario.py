@@ -28,6 +28,7 @@ from designcalc.covariates import (
 from designcalc.density import DensityRule
 from designcalc.edge_models import KERNEL_FAMILIES, BlockModel, EdgeModel, KernelModel
 from designcalc.errors import DesignCalcError, ScenarioError
+from designcalc.measurement import CAP_RULES, SYMMETRISE_RULES, MeasurementModel
 from designcalc.outcomes import SPILLOVER_SHAPES, OutcomeModel
 from designcalc.surveyed import TYPE_RULES, SurveyedNetwork, load_surveyed_network
 
@@ -150,6 +151,7 @@ class Scenario:
     simulation: SimulationSettings
     covariates: CovariateLoadings | None = None  # None: no baseline covariates
     execution: ExecutionSettings = ExecutionSettings()
+    measurement: MeasurementModel | None = None  # None: estimators see the true network
     source: str = "<scenario>"
     sha256: str = ""
     text: str = field(default="", repr=False)
@@ -346,7 +348,8 @@ def _range_text(low: float | None, high: float | None, low_open: bool, high_open
 # ---------------------------------------------------------------------------
 # Section readers
 # ---------------------------------------------------------------------------
-_TOP_KEYS = ("scenario", "population", "network", "outcome", "covariates", "design", "estimators", "simulation", "execution")
+_TOP_KEYS = ("scenario", "population", "network", "outcome", "covariates", "design", "estimators", "simulation", "execution", "measurement")
+_MEASUREMENT_KEYS = ("contact_cap", "cap_rule", "symmetrise", "tie_recall", "non_response", "false_ties", "augmented")
 _EXECUTION_KEYS = ("workers", "cluster", "store")
 _COVARIATE_KEYS = ("name", "r_squared", "through_type")
 _SCENARIO_KEYS = ("name", "description")
@@ -403,7 +406,8 @@ def _read_surveyed(t: _Table, folder: Path) -> tuple[SurveyedNetwork, DensityRul
     files = [raw] if isinstance(raw, str) else raw
     if not isinstance(files, list) or not files or not all(isinstance(f, str) and f.strip() for f in files):
         raise t.error("edges", "must be an edge-list file name in quotes, or a list of them (one per village)", received=raw)
-    if len(set(files)) != len(files):
+    paths = [Path(f).expanduser() if Path(f).expanduser().is_absolute() else folder / f for f in files]
+    if len({p.resolve() for p in paths}) != len(paths):  # "v1.csv" and "./v1.csv" are one village
         raise t.error("edges", "names the same file twice", received=raw)
     types = t.choice("types", TYPE_RULES, "random")
     for name in _BLOCK_AND_KERNEL_KEYS:
@@ -411,7 +415,6 @@ def _read_surveyed(t: _Table, folder: Path) -> tuple[SurveyedNetwork, DensityRul
             raise t.error(name, 'has no use with model = "surveyed": the network is the survey itself', hint="remove it")
     if t.has("density"):
         raise t.error("density", 'has no use with model = "surveyed": the survey fixes the density', hint="remove the [network.density] table")
-    paths = [Path(f).expanduser() if Path(f).expanduser().is_absolute() else folder / f for f in files]
     try:
         network = load_surveyed_network(paths, types=types, names=files)
     except DesignCalcError as exc:
@@ -659,6 +662,26 @@ def _read_execution(top: _Table) -> ExecutionSettings:
     return ExecutionSettings(workers, cluster, store)
 
 
+def _read_measurement(top: _Table) -> MeasurementModel | None:
+    """``[measurement]``: how the network survey sees the true network (``designcalc.measurement``)."""
+    t = top.table("measurement", _MEASUREMENT_KEYS, required=False)
+    if t is None:
+        return None
+    cap = t.number("contact_cap", None, low=1, high=_MAX_UNITS, integer=True)
+    cap_rule = t.choice("cap_rule", CAP_RULES, "random")
+    symmetrise = t.choice("symmetrise", SYMMETRISE_RULES, "either")
+    recall = t.number("tie_recall", 1.0, low=0.0, high=1.0)
+    non_response = t.number("non_response", 0.0, low=0.0, high=1.0, high_open=True)
+    false_ties = t.number("false_ties", 0.0, low=0.0, high=1000.0)
+    augmented = t.raw("augmented", False)
+    if not isinstance(augmented, bool):
+        raise t.error("augmented", "must be true or false", allowed="true or false", received=augmented)
+    if cap is None and t.has("cap_rule"):
+        raise t.error("cap_rule", "chooses which contacts a capped respondent names, but no contact_cap is set", hint="add `contact_cap = ...` or remove cap_rule")
+    t.finish()
+    return MeasurementModel(cap, cap_rule, symmetrise, recall, non_response, false_ties, augmented)
+
+
 def parse_scenario(text: str, *, source: str = "<scenario>", folder: str | Path | None = None) -> Scenario:
     """Validate the TOML text of a scenario.
 
@@ -701,6 +724,7 @@ def parse_scenario(text: str, *, source: str = "<scenario>", folder: str | Path 
     estimators = _read_estimators(top, outcome, covariates is not None)
     simulation = _read_simulation(top)
     execution = _read_execution(top)
+    measurement = _read_measurement(top)
     top.finish()
     for n in population.units:
         if density.target_mean_degree(n) >= n - 1:
@@ -720,6 +744,7 @@ def parse_scenario(text: str, *, source: str = "<scenario>", folder: str | Path 
         simulation=simulation,
         covariates=covariates,
         execution=execution,
+        measurement=measurement,
         source=source,
         sha256=hashlib.sha256(text.encode("utf-8")).hexdigest(),
         text=text,
@@ -751,7 +776,8 @@ def load_scenario(path: str | Path) -> Scenario:
         raise ScenarioError("is not UTF-8 text", file=str(path), hint="save the scenario as plain UTF-8 text") from None
     scenario = parse_scenario(text, source=path.name, folder=path.parent)
     store = scenario.execution.store
-    if isinstance(store, str) and not Path(store).expanduser().is_absolute():
-        # A project's store sits with its scenario, wherever the command is run from.
-        scenario = replace(scenario, execution=replace(scenario.execution, store=str(path.parent / store)))
+    if isinstance(store, str):
+        # A project's store sits with its scenario, wherever the command is run from ("~" is the home folder).
+        named = Path(store).expanduser()
+        scenario = replace(scenario, execution=replace(scenario.execution, store=str(named if named.is_absolute() else path.parent / named)))
     return scenario

@@ -67,7 +67,6 @@ __all__ = [
 
 #: Version of the tables and the payload format; a store written by a newer version is refused, not misread.
 SCHEMA_VERSION = 1
-_PROBABILITY_KEY_SCALE = 1_000_000_000  # as the engine's stream keys: pi to 1e-9
 _BUSY_TIMEOUT_MS = 30_000  # another designcalc writing the same store waits, it does not fail
 
 _SCHEMA = """
@@ -86,12 +85,12 @@ CREATE TABLE IF NOT EXISTS result_sets (
 CREATE TABLE IF NOT EXISTS blocks (
     fingerprint TEXT NOT NULL REFERENCES result_sets(fingerprint),
     units INTEGER NOT NULL,
-    probability_key INTEGER NOT NULL,
+    probability TEXT NOT NULL,
     graph_index INTEGER NOT NULL,
     payload BLOB NOT NULL,
     created TEXT NOT NULL,
     last_used TEXT NOT NULL,
-    PRIMARY KEY (fingerprint, units, probability_key, graph_index)
+    PRIMARY KEY (fingerprint, units, probability, graph_index)
 );
 """
 
@@ -157,6 +156,9 @@ def numbers_fingerprint(scenario: Scenario, runs: Sequence[Run] | None = None, *
         "assignments_per_graph": scenario.simulation.assignments_per_graph,
         "runs": _runs_description(runs),
     }
+    if scenario.measurement is not None:
+        # Added only when present, so the fingerprints (and stored graphs) of scenarios without one stay as they were.
+        content["measurement"] = _canonical(scenario.measurement)
     text = json.dumps(content, sort_keys=True, separators=(",", ":"), allow_nan=True)
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
@@ -224,8 +226,9 @@ def _library_versions() -> str:
     return json.dumps({"numpy": np.__version__, "scipy": scipy.__version__}, sort_keys=True)
 
 
-def _probability_key(pi: float) -> int:
-    return int(round(pi * _PROBABILITY_KEY_SCALE))
+def _probability_key(pi: float) -> str:
+    # The exact float (hex): the estimators use pi itself, so two probabilities that round alike are not one point.
+    return float(pi).hex()
 
 
 def _now() -> str:
@@ -294,7 +297,6 @@ class ResultStore:
         self.reused = 0
         self.computed = 0
         self.write_error: str | None = None
-        self._known_sets: set[str] = set()
         try:
             self.path.parent.mkdir(parents=True, exist_ok=True)
             self._db = sqlite3.connect(self.path, timeout=_BUSY_TIMEOUT_MS / 1000, isolation_level=None)
@@ -305,19 +307,22 @@ class ResultStore:
             # Write-ahead log: a commit survives the process being killed, readers never see half a write.
             self._db.execute("PRAGMA journal_mode = WAL")
             self._db.execute("PRAGMA synchronous = NORMAL")
-            with self._transaction():
-                self._has_tables()  # refuses a foreign SQLite file before writing to it
-                for statement in _SCHEMA.split(";"):
-                    if statement.strip():
-                        self._db.execute(statement)
-                row = self._db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
-                if row is None:
-                    self._db.execute("INSERT INTO meta VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
-                elif int(row[0]) > SCHEMA_VERSION:
-                    raise DesignCalcError(
-                        f"results store {self.path}: written by a newer designcalc (store format {row[0]}, this one reads {SCHEMA_VERSION}); "
-                        "upgrade designcalc or use another --store"
-                    )
+            if not self._has_tables():  # a foreign SQLite file is refused before anything is written to it
+                with self._transaction():
+                    for statement in _SCHEMA.split(";"):
+                        if statement.strip():
+                            self._db.execute(statement)
+                    self._db.execute("INSERT OR IGNORE INTO meta VALUES ('schema_version', ?)", (str(SCHEMA_VERSION),))
+            row = self._db.execute("SELECT value FROM meta WHERE key = 'schema_version'").fetchone()
+            if row is not None and int(row[0]) > SCHEMA_VERSION:
+                raise DesignCalcError(
+                    f"results store {self.path}: written by a newer designcalc (store format {row[0]}, this one reads {SCHEMA_VERSION}); "
+                    "upgrade designcalc or use another --store"
+                )
+        except sqlite3.OperationalError as exc:
+            self._db.close()
+            # Locked by another designcalc for longer than the busy timeout, read-only, or unreadable.
+            raise DesignCalcError(f"results store {self.path}: cannot be used now ({exc}); try again, or choose another with --store PATH") from None
         except sqlite3.DatabaseError as exc:
             self._db.close()
             raise DesignCalcError(f"results store {self.path}: not a designcalc results store ({exc}); choose another with --store PATH") from None
@@ -326,6 +331,7 @@ class ResultStore:
             raise
 
     def _has_tables(self) -> bool:
+        """Whether the designcalc tables exist; raises for a database that holds other tables."""
         names = {r[0] for r in self._db.execute("SELECT name FROM sqlite_master WHERE type = 'table'")}
         if names and not {"meta", "result_sets", "blocks"} <= names:
             raise sqlite3.DatabaseError("it holds other tables")
@@ -346,17 +352,21 @@ class ResultStore:
     # -- blocks -----------------------------------------------------------------
     def stored_graphs(self, fingerprint: str, point: DesignPoint) -> set[int]:
         """Graph indices of ``point`` already stored under ``fingerprint``."""
-        rows = self._db.execute(
-            "SELECT graph_index FROM blocks WHERE fingerprint = ? AND units = ? AND probability_key = ?",
-            (fingerprint, point.units, _probability_key(point.treatment_probability)),
-        )
+        try:
+            rows = self._db.execute(
+                "SELECT graph_index FROM blocks WHERE fingerprint = ? AND units = ? AND probability = ?",
+                (fingerprint, point.units, _probability_key(point.treatment_probability)),
+            ).fetchall()
+        except sqlite3.Error as exc:  # a damaged file: compute everything, store nothing more
+            self.write_error = f"results store {self.path}: cannot be read ({exc}); the run goes on without it"
+            return set()
         return {r[0] for r in rows}
 
     def fetch(self, fingerprint: str, point: DesignPoint, graph_index: int) -> GraphDraws | None:
         """The stored block, or None if it is missing or damaged (then it is simply computed again)."""
         try:
             row = self._db.execute(
-                "SELECT payload FROM blocks WHERE fingerprint = ? AND units = ? AND probability_key = ? AND graph_index = ?",
+                "SELECT payload FROM blocks WHERE fingerprint = ? AND units = ? AND probability = ? AND graph_index = ?",
                 (fingerprint, point.units, _probability_key(point.treatment_probability), graph_index),
             ).fetchone()
         except sqlite3.Error:  # an unreadable page: compute the graph again
@@ -384,21 +394,20 @@ class ResultStore:
         except sqlite3.Error as exc:
             self.write_error = f"results store {self.path}: could not store a graph ({exc}); the run goes on without storing"
             return
-        self._known_sets.add(fingerprint)
 
     def _write_block(
         self, fingerprint: str, scenario: Scenario, runs: Sequence[Run], point: DesignPoint, graph_index: int, payload: bytes, now: str,
     ) -> None:
         with self._transaction():
-            if fingerprint not in self._known_sets:
-                self._db.execute(
-                    "INSERT OR IGNORE INTO result_sets VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
-                    (
-                        fingerprint, scenario.name, scenario.source, scenario.sha256,
-                        json.dumps(_runs_description(runs), sort_keys=True), __version__, _library_versions(),
-                        STREAM_LAYOUT_VERSION, now,
-                    ),
-                )
+            # Every time, not cached: another process may have pruned the set since (INSERT OR IGNORE is cheap).
+            self._db.execute(
+                "INSERT OR IGNORE INTO result_sets VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                (
+                    fingerprint, scenario.name, scenario.source, scenario.sha256,
+                    json.dumps(_runs_description(runs), sort_keys=True), __version__, _library_versions(),
+                    STREAM_LAYOUT_VERSION, now,
+                ),
+            )
             self._db.execute(
                 "INSERT OR REPLACE INTO blocks VALUES (?, ?, ?, ?, ?, ?, ?)",
                 (fingerprint, point.units, _probability_key(point.treatment_probability), graph_index, payload, now, now),
@@ -412,7 +421,7 @@ class ResultStore:
         try:
             with self._transaction():
                 self._db.executemany(
-                    "UPDATE blocks SET last_used = ? WHERE fingerprint = ? AND units = ? AND probability_key = ? AND graph_index = ?", rows
+                    "UPDATE blocks SET last_used = ? WHERE fingerprint = ? AND units = ? AND probability = ? AND graph_index = ?", rows
                 )
         except sqlite3.Error as exc:
             self.write_error = f"results store {self.path}: could not record the use of stored graphs ({exc})"
@@ -423,7 +432,7 @@ class ResultStore:
         rows = self._db.execute(
             """
             SELECT s.fingerprint, s.scenario_name, s.scenario_file, s.scenario_sha256, s.runs, s.tool_version,
-                   s.library_versions, s.stream_layout_version, COUNT(DISTINCT b.units || ':' || b.probability_key), COUNT(b.graph_index),
+                   s.library_versions, s.stream_layout_version, COUNT(DISTINCT b.units || ':' || b.probability), COUNT(b.graph_index),
                    COALESCE(SUM(LENGTH(b.payload)), 0), s.created, COALESCE(MAX(b.last_used), s.created)
             FROM result_sets s LEFT JOIN blocks b ON b.fingerprint = s.fingerprint
             GROUP BY s.fingerprint ORDER BY 13 DESC, s.fingerprint
@@ -449,7 +458,7 @@ class ResultStore:
         for fingerprint in fingerprints:
             name_row = self._db.execute("SELECT scenario_name FROM result_sets WHERE fingerprint = ?", (fingerprint,)).fetchone()
             for units, pkey, graph, payload in self._db.execute(
-                "SELECT units, probability_key, graph_index, payload FROM blocks WHERE fingerprint = ? ORDER BY units, probability_key, graph_index",
+                "SELECT units, probability, graph_index, payload FROM blocks WHERE fingerprint = ? ORDER BY units, probability, graph_index",
                 (fingerprint,),
             ):
                 try:
@@ -461,16 +470,20 @@ class ResultStore:
                         truth = run.estimands.value(key[0])
                         for b, (estimate, se) in enumerate(zip(estimates, run.standard_errors[key])):
                             writer.writerow((
-                                fingerprint, name_row[0], units, repr(pkey / _PROBABILITY_KEY_SCALE), graph, label, *key, b,
+                                fingerprint, name_row[0], units, repr(float.fromhex(pkey)), graph, label, *key, b,
                                 repr(truth), repr(float(estimate)), repr(float(se)),
                             ))
                             count += 1
         return count
 
-    def prune(self, fingerprints: Sequence[str] = (), *, unused_before: str | None = None) -> tuple[int, int]:
-        """Delete whole sets, and/or blocks last used before an ISO time; returns (sets, blocks) removed."""
+    def prune(
+        self, fingerprints: Sequence[str] = (), *, unused_before: str | None = None, everything: bool = False,
+    ) -> tuple[int, int]:
+        """Delete whole sets, blocks last used before an ISO time, or ``everything``; returns (sets, blocks) removed."""
         blocks = sets = 0
         with self._transaction():
+            if everything:  # also blocks whose set row another process removed meanwhile
+                blocks += self._db.execute("DELETE FROM blocks").rowcount
             for fingerprint in fingerprints:
                 blocks += self._db.execute("DELETE FROM blocks WHERE fingerprint = ?", (fingerprint,)).rowcount
             if unused_before is not None:
@@ -478,22 +491,32 @@ class ResultStore:
             sets = self._db.execute(
                 "DELETE FROM result_sets WHERE fingerprint NOT IN (SELECT DISTINCT fingerprint FROM blocks)"
             ).rowcount
-        self._known_sets.clear()
         self._db.execute("VACUUM")  # give the space back to the file system
         return sets, blocks
 
 
 class _Transaction:
-    """BEGIN IMMEDIATE ... COMMIT, rolled back on any exception (Ctrl-C included)."""
+    """BEGIN IMMEDIATE ... COMMIT, rolled back on any exception (Ctrl-C included), even one inside ``__enter__``."""
 
     def __init__(self, db: sqlite3.Connection) -> None:
         self._db = db
 
     def __enter__(self) -> None:
-        self._db.execute("BEGIN IMMEDIATE")
+        if self._db.in_transaction:  # left open by an earlier call interrupted between BEGIN and the with-block
+            self._db.execute("ROLLBACK")
+        try:
+            self._db.execute("BEGIN IMMEDIATE")
+        except BaseException:
+            # Ctrl-C right after BEGIN returned: __exit__ will not run, so do not keep the write lock.
+            if self._db.in_transaction:
+                self._db.execute("ROLLBACK")
+            raise
 
     def __exit__(self, kind: object, *exc: object) -> None:
-        self._db.execute("COMMIT" if kind is None else "ROLLBACK")
+        if kind is None:
+            self._db.execute("COMMIT")
+        elif self._db.in_transaction:  # SQLite may have rolled back already (e.g. disk full)
+            self._db.execute("ROLLBACK")
 
 
 def stored_or_computed(
@@ -508,4 +531,3 @@ def stored_or_computed(
             have[point] = store.stored_graphs(fingerprint, point)
         stored.append(g in have[point])
     return fingerprint, stored
-

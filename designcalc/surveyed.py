@@ -54,6 +54,9 @@ class SurveyedNetwork:
     files, adjacency, notes
         The files as named, the symmetric CSR adjacency (int32 indices; the
         villages as diagonal blocks), and what the reader dropped or merged.
+    weights
+        Tie weights with the adjacency's sparsity pattern when every file
+        has a weight column, else None.
     """
 
     sha256: str
@@ -64,6 +67,9 @@ class SurveyedNetwork:
     notes: tuple[str, ...] = field(default=(), repr=False)
     # The bytes that were read (their SHA-256 is ``sha256``): a report copies them beside the scenario.
     file_bytes: tuple[bytes, ...] = field(default=(), repr=False)
+    # Tie weights (the edge lists' third column) with the adjacency's pattern, when every file has them;
+    # only a measurement model's "strongest" cap reads them (designcalc.measurement).
+    weights: sp.sparse.csr_array | None = field(default=None, repr=False)
     kind: str = field(default="surveyed", init=False)
 
     @property
@@ -171,7 +177,7 @@ def load_surveyed_network(paths: Sequence[str | Path], *, types: str = "random",
         raise DesignCalcError(f"types must be one of {', '.join(TYPE_RULES)}; got {types!r}")
     names = [str(p) for p in paths] if names is None else list(names)
     digest = hashlib.sha256()
-    blocks, sizes, notes, contents = [], [], [], []
+    blocks, sizes, notes, contents, weight_blocks = [], [], [], [], []
     for path, name in zip(paths, names):
         edges = read_edge_list(path)
         contents.append(Path(path).read_bytes())
@@ -180,6 +186,7 @@ def load_surveyed_network(paths: Sequence[str | Path], *, types: str = "random",
         if edges.n_units < 4:
             raise DesignCalcError(f"{name}: only {edges.n_units} units; a surveyed network needs at least 4")
         blocks.append(edges.adjacency)
+        weight_blocks.append(edges.weights)
         sizes.append(edges.n_units)
         summary = edges.summary
         for label, count in (("self ties dropped", summary.n_self_ties), ("repeated ties merged", summary.n_duplicate_lines), ("zero-weight lines dropped", summary.n_zero_weight_lines)):
@@ -189,4 +196,14 @@ def load_surveyed_network(paths: Sequence[str | Path], *, types: str = "random",
     adjacency.sum_duplicates()  # canonical CSR (sorted, no repeats), as the engine's own samplers build it
     adjacency.indices = adjacency.indices.astype(np.int32)
     adjacency.indptr = adjacency.indptr.astype(np.int32 if adjacency.nnz < 2**31 else np.int64)
-    return SurveyedNetwork(digest.hexdigest(), tuple(sizes), types, tuple(names), adjacency, tuple(notes), tuple(contents))
+    weights = None
+    if all(w is not None for w in weight_blocks):
+        weights = sp.sparse.csr_array(sp.sparse.block_diag(weight_blocks, format="csr"))
+        weights.sum_duplicates()
+        weights.indices = weights.indices.astype(np.int32)
+        weights.indptr = weights.indptr.astype(adjacency.indptr.dtype)
+        if weights.nnz != adjacency.nnz or not np.array_equal(weights.indices, adjacency.indices):
+            weights = None  # a zero weight vanished in the join: fall back to random strengths rather than misalign
+    return SurveyedNetwork(
+        digest.hexdigest(), tuple(sizes), types, tuple(names), adjacency, tuple(notes), tuple(contents), weights=weights
+    )

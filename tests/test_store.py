@@ -112,6 +112,10 @@ def test_the_fingerprint_changes_with_anything_that_changes_the_numbers():
         numbers_fingerprint(_variant(text, "centre = 20.0", "centre = 21.0")),
         numbers_fingerprint(restrict_tests(s, [("direct", "hajek", "neyman")])),
         numbers_fingerprint(s, [Run("alternative", s.outcome.scaled_for("direct", 2.0), ("direct",))]),
+        numbers_fingerprint(parse_scenario(text + "\n[measurement]\ncontact_cap = 5\n", source="a.toml")),
+        numbers_fingerprint(parse_scenario(text + "\n[measurement]\ncontact_cap = 4\n", source="a.toml")),
+        numbers_fingerprint(parse_scenario(text + "\n[measurement]\ncontact_cap = 5\nsymmetrise = \"both\"\n", source="a.toml")),
+        numbers_fingerprint(parse_scenario(text + "\n[measurement]\ncontact_cap = 5\naugmented = true\n", source="a.toml")),
     ]
     assert base not in changed and len(set(changed)) == len(changed)
 
@@ -434,3 +438,48 @@ def test_a_report_rebuilt_from_the_store_simulates_nothing_and_is_the_same(tmp_p
         return json.dumps(d, sort_keys=True)
 
     assert canonical(first) == canonical(second)
+
+
+def test_probabilities_that_round_alike_are_different_points(tmp_path):
+    """The store keys a design point by its exact probability: 0.3 and 0.3 + 1e-10 are not served from one block."""
+    s = load_scenario(DEMO)
+    with ResultStore(tmp_path / "r.sqlite") as store:
+        list(simulate_graphs(s, [(DesignPoint(200, 0.3), 0)], store=store))
+        (other,) = simulate_graphs(s, [(DesignPoint(200, 0.3 + 1e-10), 0)], store=store)
+        assert (store.reused, store.computed) == (0, 2)
+    assert other.estimands.treatment_probability == 0.3 + 1e-10
+
+
+def test_graphs_written_after_another_process_pruned_their_set_stay_listed(tmp_path):
+    """Store A keeps writing after store B pruned everything: the set comes back in `sets()` and prune --all removes it."""
+    s = load_scenario(DEMO)
+    path = tmp_path / "r.sqlite"
+    with ResultStore(path) as a, ResultStore(path) as b:
+        list(simulate_graphs(s, [(DesignPoint(200, 0.5), 0)], store=a))
+        b.prune(everything=True)
+        list(simulate_graphs(s, [(DesignPoint(200, 0.5), 1)], store=a))
+        assert [x.blocks for x in b.sets()] == [1]
+        assert b.prune(everything=True) == (1, 1)
+        assert b.sets() == []
+
+
+def test_a_damaged_store_file_never_gives_a_traceback_or_other_numbers(tmp_path):
+    """A page of the file overwritten: opening refuses with the store named, or the run finishes with the same numbers."""
+    s = load_scenario(DEMO)
+    path = tmp_path / "r.sqlite"
+    with ResultStore(path) as store:
+        reference = simulate_power(s, store=store, **SMALL)
+    with sqlite3.connect(path) as db:
+        db.execute("PRAGMA wal_checkpoint(TRUNCATE)")
+        page = db.execute("PRAGMA page_size").fetchone()[0]
+    data = bytearray(path.read_bytes())
+    data[5 * page : 6 * page] = b"\xff" * page
+    path.write_bytes(bytes(data))
+    try:
+        store = ResultStore(path)
+    except DesignCalcError as exc:
+        assert str(path) in str(exc)
+        return
+    with store:
+        again = simulate_power(s, store=store, **SMALL)
+    assert without_time(again) == without_time(reference)

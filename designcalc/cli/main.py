@@ -28,7 +28,7 @@ def stdout_console() -> Console:
 
 
 def _register() -> None:
-    from designcalc.cli import check, compare, fit, mde, power, report, size, store
+    from designcalc.cli import check, compare, fit, mde, measure, power, report, size, store
 
     check.register(app)
     power.register(app)
@@ -38,6 +38,7 @@ def _register() -> None:
     report.register(app)
     store.register(app)
     fit.register(app)
+    measure.register(app)
 
 
 _register()
