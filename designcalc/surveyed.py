@@ -117,9 +117,11 @@ class SurveyedNetwork:
         return starts[village] + position * np.asarray(self.shares)[village]
 
     def mean_degree(self) -> float:
+        """Mean number of ties per unit."""
         return float(self.degrees.mean()) if self.n_units else 0.0
 
     def share_isolated(self) -> float:
+        """Share of units with no tie."""
         return float(np.mean(self.degrees == 0)) if self.n_units else 0.0
 
     def leading_eigenvalues(self, count: int = 6) -> np.ndarray:
@@ -138,12 +140,15 @@ class SurveyedNetwork:
     # What `designcalc check` asks of an edge model, answered from the network itself
     # (the density rule of a surveyed scenario is the observed one, so rho x 1 is the observed density).
     def expected_mean_degree(self, n_units: int, rho: float) -> float:
+        """The observed mean degree (the network is fixed; the arguments are an edge model's)."""
         return self.mean_degree()
 
     def max_value(self) -> float:
+        """1: rho (the observed density) times it is the density ``check`` shows."""
         return 1.0
 
     def expected_adjacency_eigenvalues(self, n_units: int, rho: float) -> np.ndarray:
+        """The surveyed adjacency's own leading eigenvalues."""
         return self.leading_eigenvalues()
 
     def describe(self) -> str:
@@ -172,6 +177,16 @@ def load_surveyed_network(paths: Sequence[str | Path], *, types: str = "random",
     DesignCalcError
         From the reader (naming file and line), or when the network is too
         small to plan on.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> folder = pathlib.Path(tempfile.mkdtemp())
+    >>> _ = (folder / "north.csv").write_text("a,b\n1,2\n2,3\n3,4\n4,1\n")
+    >>> _ = (folder / "south.csv").write_text("a,b\n7,8\n8,9\n9,7\n9,10\n")
+    >>> network = load_surveyed_network([folder / "north.csv", folder / "south.csv"])
+    >>> network.village_sizes, network.n_blocks, network.mean_degree()
+    ((4, 4), 2, 2.0)
     """
     if types not in TYPE_RULES:
         raise DesignCalcError(f"types must be one of {', '.join(TYPE_RULES)}; got {types!r}")

@@ -379,9 +379,10 @@ def build_report(
         Called with the phase name ("power", "minimum detectable effects",
         "sample size", "treatment probabilities") and the engine's progress.
     cluster, store
-        A dask scheduler address for the power table and the size search,
-        and a ``designcalc.store.ResultStore`` whose stored graphs they reuse
-        (and extend); neither changes a number (``simulate_power``).
+        A dask scheduler address (or an open ``execution.ClusterConnection``)
+        and a ``designcalc.store.ResultStore`` for every phase (power, MDE,
+        sample size, comparison), which reuse and extend its stored graphs;
+        neither changes a number (``simulate_power``).
 
     Returns
     -------
