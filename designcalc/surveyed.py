@@ -182,8 +182,8 @@ def load_surveyed_network(paths: Sequence[str | Path], *, types: str = "random",
     --------
     >>> import tempfile, pathlib
     >>> folder = pathlib.Path(tempfile.mkdtemp())
-    >>> _ = (folder / "north.csv").write_text("a,b\n1,2\n2,3\n3,4\n4,1\n")
-    >>> _ = (folder / "south.csv").write_text("a,b\n7,8\n8,9\n9,7\n9,10\n")
+    >>> _ = (folder / "north.csv").write_text("a,b\\n1,2\\n2,3\\n3,4\\n4,1\\n")
+    >>> _ = (folder / "south.csv").write_text("a,b\\n7,8\\n8,9\\n9,7\\n9,10\\n")
     >>> network = load_surveyed_network([folder / "north.csv", folder / "south.csv"])
     >>> network.village_sizes, network.n_blocks, network.mean_degree()
     ((4, 4), 2, 2.0)
