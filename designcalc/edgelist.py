@@ -34,7 +34,7 @@ import scipy as sp
 
 from designcalc.errors import DesignCalcError
 
-__all__ = ["EdgeList", "EdgeListError", "EdgeListSummary", "parse_edge_list", "read_edge_list"]
+__all__ = ["EdgeList", "EdgeListError", "EdgeListSummary", "parse_edge_list", "read_edge_list", "read_edge_list_file"]
 
 # A node id must fit the int64 arrays the reader builds.
 _ID_LIMIT = 2**63 - 1
@@ -183,6 +183,11 @@ def read_edge_list(path: str | Path) -> EdgeList:
     >>> edges.n_units, edges.n_ties, edges.summary.n_duplicate_lines
     (3, 2, 1)
     """
+    return read_edge_list_file(path)[0]
+
+
+def read_edge_list_file(path: str | Path) -> tuple[EdgeList, bytes]:
+    """``read_edge_list`` and the bytes it parsed, for callers that hash or copy exactly what was read (one read)."""
     path = Path(path)
     name = str(path)
     try:
@@ -198,7 +203,7 @@ def read_edge_list(path: str | Path) -> EdgeList:
     except UnicodeDecodeError as exc:
         line = raw[: exc.start].count(b"\n") + 1
         raise EdgeListError("is not UTF-8 text", file=name, line=line, hint="save the edge list as plain UTF-8 CSV") from None
-    return parse_edge_list(text, source=name)
+    return parse_edge_list(text, source=name), raw
 
 
 def parse_edge_list(text: str, *, source: str = "<edges>") -> EdgeList:

@@ -22,9 +22,7 @@ from __future__ import annotations
 
 import io
 import math
-import os
 import pathlib
-import tempfile
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, TypeVar
@@ -42,6 +40,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch
 from matplotlib.ticker import FuncFormatter, NullFormatter
 
+from designcalc.atomic import atomic_file
 from designcalc.engine import ESTIMANDS
 from designcalc.errors import DesignCalcError
 
@@ -931,25 +930,11 @@ def svg_text(fig: Figure) -> str:
 def _write_atomically(fig: Figure, path: pathlib.Path) -> None:
     suffix = path.suffix.lstrip(".")
     metadata: dict[str, str | None] = {"Software": None} if suffix == "png" else {"Date": None}
-    handle, temporary = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".part")
-    try:
-        with os.fdopen(handle, "wb") as file, mpl.rc_context(_SAVE_STYLE):
-            fig.savefig(file, format=suffix, dpi=_PNG_DPI, metadata=metadata)
-        os.chmod(temporary, 0o666 & ~current_umask())  # mkstemp makes 0600; give the file the usual permissions
-        os.replace(temporary, path)
-    except BaseException:
-        pathlib.Path(temporary).unlink(missing_ok=True)
-        raise
+    with atomic_file(path, "wb") as file, mpl.rc_context(_SAVE_STYLE):
+        fig.savefig(file, format=suffix, dpi=_PNG_DPI, metadata=metadata)
 
 
 # ---------------------------------------------------------------- helpers
-
-
-def current_umask() -> int:
-    """The process umask, for files made by mkstemp/mkdtemp (0600/0700); os can only read it by setting it, so it is set back at once."""
-    current = os.umask(0)
-    os.umask(current)
-    return current
 
 
 class _SeriesStyles:

@@ -29,7 +29,7 @@ import scipy as sp
 import scipy.sparse
 import scipy.sparse.linalg
 
-from designcalc.edgelist import read_edge_list
+from designcalc.edgelist import read_edge_list_file
 from designcalc.errors import DesignCalcError
 
 __all__ = ["SurveyedNetwork", "load_surveyed_network", "TYPE_RULES"]
@@ -194,8 +194,8 @@ def load_surveyed_network(paths: Sequence[str | Path], *, types: str = "random",
     digest = hashlib.sha256()
     blocks, sizes, notes, contents, weight_blocks = [], [], [], [], []
     for path, name in zip(paths, names):
-        edges = read_edge_list(path)
-        contents.append(Path(path).read_bytes())
+        edges, raw = read_edge_list_file(path)  # the hash and the report's copy are of the bytes parsed
+        contents.append(raw)
         digest.update(contents[-1])
         digest.update(b"\0")  # file boundaries matter: two villages are not one
         if edges.n_units < 4:

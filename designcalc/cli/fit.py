@@ -3,8 +3,6 @@
 from __future__ import annotations
 
 import json
-import os
-import tempfile
 from pathlib import Path
 from typing import Annotated
 
@@ -20,6 +18,7 @@ from designcalc.cli.output import (
     new_table,
     write_figures,
 )
+from designcalc.atomic import atomic_file
 from designcalc.edgelist import read_edge_list
 from designcalc.errors import DesignCalcError
 from designcalc.fit import BLOCK_CAP, DEFAULT_SEED, NetworkFit, fit_network
@@ -40,26 +39,6 @@ def check_out_path(out: Path | None, force: bool, edges: Path) -> None:
         raise DesignCalcError(f"--out {out}: is the edge-list file itself; give another name")
     if out.exists() and not force:
         raise DesignCalcError(f"--out {out}: the file exists; give --force to replace it, or another name")
-
-
-def write_atomically(text: str, path: Path) -> None:
-    """Write ``text`` to a temporary file beside ``path`` and rename it into place: never half a file."""
-    handle, temporary = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.absolute().parent)
-    try:
-        with os.fdopen(handle, "w", encoding="utf-8") as stream:
-            stream.write(text)
-        os.chmod(temporary, 0o666 & ~_umask())
-        os.replace(temporary, path)
-    except BaseException:
-        Path(temporary).unlink(missing_ok=True)
-        raise
-
-
-def _umask() -> int:
-    # os.umask can only be read by setting it; set it straight back.
-    mask = os.umask(0)
-    os.umask(mask)
-    return mask
 
 
 def render_table(result: NetworkFit, console: Console, out: Path | None) -> None:
@@ -144,7 +123,8 @@ def register(app: typer.Typer) -> None:
         check_figures_dir(figures)
         result = fit_network(read_edge_list(edges), n_blocks=blocks, graphs=graphs, seed=seed)
         if out is not None:
-            write_atomically(result.fragment, out)
+            with atomic_file(out, encoding="utf-8") as handle:  # never half a fragment
+                handle.write(result.fragment)
         write_figures(figures, lambda: _figures(result))
         if output_format == "json":
             data = result.to_dict()

@@ -6,7 +6,6 @@ import datetime as _dt
 import hashlib
 import io
 import json
-import os
 import sqlite3
 import sys
 from collections.abc import Iterator
@@ -16,6 +15,7 @@ from typing import Annotated
 
 import typer
 
+from designcalc.atomic import atomic_file
 from designcalc.cli.output import OutputFormat, check_format, new_table
 from designcalc.errors import DesignCalcError
 from designcalc.store import ResultStore, StoredSet, default_store_path
@@ -152,13 +152,8 @@ def register(app: typer.Typer) -> None:
             raise DesignCalcError(f"--out {out}: is the results store itself; give another file name")
         with _using(_open(store)) as opened:
             chosen = _chosen(opened, sets, scenario) if (sets or scenario) else opened.sets()
-            temporary = out.with_name(f".{out.name}.partial")
-            try:
-                with open(temporary, "w", encoding="utf-8", newline="") as handle:
-                    rows = opened.export_csv(handle, [s.fingerprint for s in chosen])
-                os.replace(temporary, out)  # never a half-written export under the user's name
-            finally:
-                temporary.unlink(missing_ok=True)
+            with atomic_file(out, encoding="utf-8", newline="") as handle:  # never a half-written export
+                rows = opened.export_csv(handle, [s.fingerprint for s in chosen])
         stderr_console().print(f"wrote {out}: {rows} rows from {len(chosen)} stored sets")
 
     @group.command("prune")

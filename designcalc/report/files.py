@@ -27,8 +27,8 @@ from collections.abc import Callable
 from pathlib import Path
 
 from designcalc.errors import DesignCalcError
+from designcalc.atomic import current_umask
 from designcalc.figures import (
-    current_umask,
     mde_probability_figure,
     network_figure,
     power_curve_figure,
