@@ -22,6 +22,7 @@ from designcalc.power import PowerRecord, PowerResult, simulate_power
 from designcalc.mde import MdeRecord, MdeResult, minimum_detectable_effects
 from designcalc.sample_size import SizePoint, SizeRecord, SizeResult, required_sample_size
 from designcalc.compare import CompareResult, CompareRow, Criterion, compare_treatment_probabilities, parse_test_spec
+from designcalc.design_compare import DesignComparison, DesignRow, compare_designs
 
 __all__ = [
     "__version__",
@@ -49,4 +50,7 @@ __all__ = [
     "Criterion",
     "compare_treatment_probabilities",
     "parse_test_spec",
+    "DesignComparison",
+    "DesignRow",
+    "compare_designs",
 ]

@@ -5,6 +5,12 @@ degree, the expected share of isolates, the largest eigenvalues of the
 expected adjacency, the exact estimands on one simulated network, and the
 sparsity regime of METHODS.md §3.3a with plain-words warnings where the
 spillover estimators are known to struggle.
+
+For a clustered population the sizes are cluster sizes (the smallest, the
+mean and the largest a cluster can have: each cluster's density follows the
+rule at its own size), and ``cluster_notes`` adds the design effect, the
+exact contrasts of a two-stage design on one simulated population and the
+closed-form allocation advice of METHODS.md §5.3 (square-root rule).
 """
 
 from __future__ import annotations
@@ -43,6 +49,7 @@ class ScenarioCheck:
     regime: str
     regime_explanation: str
     sizes: tuple[SizeCheck, ...]
+    cluster_notes: tuple[str, ...] = ()
 
     @property
     def warnings(self) -> tuple[str, ...]:
@@ -125,8 +132,14 @@ def check_scenario(scenario: Scenario) -> ScenarioCheck:
             "The network is the surveyed one at its own size; only assignments, latent types and noise are random. "
             "How the estimators behave as studies grow does not apply; to plan other sizes, fit an edge model (designcalc fit).",
         )
+    population = scenario.population
+    if population.clustered:
+        cs = population.cluster_sizes
+        planned = sorted({cs.smallest, int(round(cs.nominal)), cs.largest})
+    else:
+        planned = list(population.units)
     sizes = []
-    for n in scenario.population.units:
+    for n in planned:
         density = density_at_size(model, rule, n)
         warnings = []
         if density.clipped:
@@ -172,4 +185,43 @@ def check_scenario(scenario: Scenario) -> ScenarioCheck:
                 warnings=tuple(warnings),
             )
         )
-    return ScenarioCheck(scenario, regime, explanation, tuple(sizes))
+    notes = _cluster_notes(scenario) if population.clustered else ()
+    return ScenarioCheck(scenario, regime, explanation, tuple(sizes), notes)
+
+
+def _cluster_notes(scenario: Scenario) -> tuple[str, ...]:
+    """Plain-words facts of a clustered design (module docstring)."""
+    from designcalc import cluster_formulas
+    from designcalc.engine import clustered_point, contrast_truths, sample_point_network
+    from designcalc.saturation import arm_counts, contrast_names, describe_contrast
+
+    population, design = scenario.population, scenario.design
+    m = population.cluster_sizes.nominal
+    icc = scenario.outcome.cluster_icc
+    notes = [f"population: {', '.join(str(c) for c in population.clusters)} clusters, {population.cluster_sizes.describe()}; no ties between clusters"]
+    notes.append(
+        f"design effect of a cluster-level comparison at the mean cluster size {m:.4g} and ICC {icc:g}: "
+        f"1 + (m - 1) ICC = {cluster_formulas.design_effect(m, icc):.3g} (Kish 1965)"
+    )
+    saturation = design.saturation
+    if saturation is None:
+        notes.append("assignment: Bernoulli within every cluster; the network estimators run on the union of the clusters' networks")
+        return tuple(notes)
+    notes.append(f"assignment: {saturation.describe()}")
+    C = population.clusters[0]
+    counts = arm_counts(saturation, C)
+    labels = ["pure control"] + [f"saturation {p:g}" for p in saturation.saturations]
+    notes.append(f"clusters per arm at {C} clusters: " + ", ".join(f"{label} {int(c)}" for label, c in zip(labels, counts)))
+    point = clustered_point(scenario, C, design.treatment_probabilities[0])
+    net = sample_point_network(scenario, point, 0)
+    theta = scenario.outcome.type_values(net.types, net.blocks)
+    truths = contrast_truths(scenario, scenario.outcome, net.degrees, theta, net.cluster_sizes)
+    for name in contrast_names(saturation):
+        notes.append(f"exact {name} on the first simulated population: {truths[name]:.4g} ({describe_contrast(name)})")
+    for p in saturation.saturations:
+        best = cluster_formulas.optimal_pure_control_share_itt(m, icc, p)
+        notes.append(
+            f"square-root rule (METHODS.md §5.3): with only ITT({p:g}) planned, the pure-control share minimising its variance "
+            f"is {best:.2f} (this design: {saturation.pure_control_share:g})"
+        )
+    return tuple(notes)

@@ -17,6 +17,10 @@ Random streams (layout version ``STREAM_LAYOUT_VERSION``) form a
   children [assignment, noise, covariates]; the third child (the baseline
   covariates' own noise) is drawn only when the scenario states covariates,
   and spawning it leaves the first two streams unchanged;
+* a clustered population (``designcalc.clusters``): family 4, one key per
+  cluster, (4, imposed cluster size or 0, graph index, cluster) -> [size,
+  types, graph]; the assignment key's fourth child draws the cluster random
+  effects (spawning it leaves the other three unchanged);
 * the network survey (only with a ``[measurement]`` table): key (3, units,
   graph index) -> one stream for ``measurement.observe_network``.  A survey
   happens once per graph, before assignment, so every treatment probability
@@ -40,6 +44,8 @@ from typing import Callable, Iterable, Sequence
 import numpy as np
 from threadpoolctl import threadpool_limits
 
+from designcalc import saturation
+from designcalc.clusters import cluster_effect_sd, sample_clustered_network
 from designcalc.covariates import draw_covariates, latent_individual_scores
 from designcalc.estimands import Estimands, ExposureMoments, estimands_from_moments, exact_estimands, exposure_moments
 from designcalc.errors import DesignCalcError, ModelError
@@ -60,6 +66,7 @@ from designcalc.estimators import (
     treated_neighbour_fraction,
 )
 from designcalc.measurement import ObservedNetwork, inclusion_weights, observe_network
+from designcalc.inference import ReferenceDistribution, reference_distribution
 from designcalc.memory import check_memory
 from designcalc.networks import SampledNetwork, kernel_grid_cells, sample_network
 from designcalc.outcomes import OutcomeModel
@@ -104,8 +111,23 @@ _LIN_VARIANCE = "hc2"
 
 @dataclass(frozen=True)
 class DesignPoint:
+    """Where the engine simulates: a size and a treatment probability.
+
+    For a clustered population ``clusters`` is the number of clusters and
+    ``units`` their nominal total; ``cluster_size`` > 0 makes every cluster
+    that size (a solver searching cluster sizes), 0 keeps the scenario's rule.
+    """
+
     units: int
     treatment_probability: float
+    clusters: int = 0
+    cluster_size: int = 0
+
+    def describe(self) -> str:
+        if not self.clusters:
+            return f"{self.units} units"
+        size = f" of {self.cluster_size}" if self.cluster_size else ""
+        return f"{self.clusters} clusters{size} (~{self.units} units)"
 
 
 @dataclass(frozen=True)
@@ -156,6 +178,7 @@ class GraphDraws:
     # estimands of other outcome models on this graph without resampling it.
     degrees: np.ndarray | None = None
     theta: np.ndarray | None = None
+    cluster_sizes: np.ndarray | None = None
     failures: dict[str, str] = field(default_factory=dict)  # estimator -> why it is undefined on this graph
 
     # Views used by the power table: the scenario's model and the null of each estimand.
@@ -224,6 +247,9 @@ def planned_keys(scenario: Scenario, units: int) -> list[tuple[str, str, str]]:
     estimator of its kind (Lin's with covariate-adjusted spillovers).
     """
     plan = scenario.estimators
+    if scenario.design.saturation is not None:
+        keys = saturation.planned_contrast_keys(scenario.design.saturation)
+        return [k for k in keys if plan.only_tests is None or k in plan.only_tests]
     keys = [("direct", d, v) for d in plan.direct for v in _direct_variances(scenario, d, units)]
     keys += [("spillover", s, _VARIANCE_OF_SPILLOVER[s]) for s in plan.spillover]
     keys += [("total", f"{_total_direct(scenario, s)}+{s}", "linearised") for s in plan.spillover]
@@ -254,11 +280,39 @@ def dropped_keys(scenario: Scenario, units: int) -> list[tuple[str, str, str]]:
 
 
 def design_points(scenario: Scenario) -> list[DesignPoint]:
+    population = scenario.population
+    if population.clustered:
+        return [
+            DesignPoint(n, p, clusters=c)
+            for c, n in zip(population.clusters, population.units)
+            for p in scenario.design.treatment_probabilities
+        ]
     return [
         DesignPoint(n, p)
-        for n in scenario.population.units
+        for n in population.units
         for p in scenario.design.treatment_probabilities
     ]
+
+
+def clustered_point(scenario: Scenario, clusters: int, treatment_probability: float, cluster_size: int = 0) -> DesignPoint:
+    """The design point of ``clusters`` clusters (each ``cluster_size`` units when > 0)."""
+    units = scenario.population.nominal_units(clusters, cluster_size)
+    return DesignPoint(units, treatment_probability, clusters=clusters, cluster_size=cluster_size)
+
+
+def test_reference(scenario: Scenario, point: DesignPoint, key: tuple[str, str, str]) -> ReferenceDistribution:
+    """The null distribution of a planned test's Wald statistic at ``point`` (``inference``).
+
+    A clustered design's contrasts refer to t with degrees of freedom from
+    the clusters (``saturation.contrast_df``) unless the scenario asks for
+    the normal.
+    """
+    design = scenario.design
+    if design.saturation is not None and saturation.is_contrast(key[1]):
+        if design.reference_distribution == "normal":
+            return ReferenceDistribution()
+        return ReferenceDistribution(saturation.contrast_df(design.saturation, point.clusters, key[1]))
+    return reference_distribution(design.reference_distribution, key[0], key[1], point.units, scenario.n_covariates)
 
 
 def _graph_streams(entropy: int, units: int, graph_index: int) -> tuple[np.random.Generator, np.random.Generator]:
@@ -282,11 +336,35 @@ def observed_network(scenario: Scenario, net: SampledNetwork, units: int, graph_
 
 def _assignment_streams(
     entropy: int, point: DesignPoint, graph_index: int
-) -> tuple[np.random.Generator, np.random.Generator, np.random.Generator]:
+) -> tuple[np.random.Generator, np.random.Generator, np.random.Generator, np.random.Generator]:
     key = (point.units, int(round(point.treatment_probability * _PROBABILITY_KEY_SCALE)), graph_index)
-    # The leading 0 / 1 keeps graph and assignment keys apart.
-    assignment, noise, covariates = np.random.SeedSequence(entropy, spawn_key=(1,) + key).spawn(3)
-    return np.random.default_rng(assignment), np.random.default_rng(noise), np.random.default_rng(covariates)
+    # The leading 0 / 1 keeps graph and assignment keys apart; the fourth child
+    # (cluster effects) leaves the first three as spawn(3) made them.
+    children = np.random.SeedSequence(entropy, spawn_key=(1,) + key).spawn(4)
+    return tuple(np.random.default_rng(c) for c in children)  # assignment, noise, covariates, cluster effects
+
+
+def sample_point_network(scenario: Scenario, point: DesignPoint, graph_index: int) -> SampledNetwork:
+    """Graph ``graph_index`` of ``point``: one network, or the union of a clustered population's networks."""
+    n = point.units
+    if point.clusters:
+        population = scenario.population
+        return sample_clustered_network(
+            scenario.network, scenario.density, population.cluster_sizes, point.clusters,
+            entropy=scenario.simulation.seed, graph_index=graph_index, cluster_size=point.cluster_size,
+        )
+    types_rng, graph_rng = _graph_streams(scenario.simulation.seed, n, graph_index)
+    bounds = scenario.network.cell_bounds(kernel_grid_cells(n)) if scenario.network.kind == "kernel" else None
+    return sample_network(scenario.network, scenario.density, n, types_rng=types_rng, graph_rng=graph_rng, cell_bounds=bounds)
+
+
+def draw_assignments(scenario: Scenario, net: SampledNetwork, point: DesignPoint, rng: np.random.Generator) -> tuple[np.ndarray, np.ndarray | None]:
+    """The (units, B) treatments of a graph, and for a clustered design the (clusters, B) arms."""
+    B = scenario.simulation.assignments_per_graph
+    design = scenario.design.saturation
+    if design is not None:
+        return saturation.assign(design, net.cluster_sizes, B, rng)
+    return rng.random((net.adjacency.shape[0], B)) < point.treatment_probability, None
 
 
 def _outcomes(model: OutcomeModel, theta: np.ndarray, W: np.ndarray, X: np.ndarray, noise: np.ndarray) -> np.ndarray:
@@ -387,6 +465,14 @@ def _run_estimators(
     return out
 
 
+def _run_contrasts(
+    scenario: Scenario, W: np.ndarray, Y: np.ndarray, sizes: np.ndarray, arms: np.ndarray, keys: Sequence[tuple[str, str, str]]
+) -> dict[tuple[str, str, str], EstimateBatch]:
+    """A clustered design's contrasts on one assignment batch (``saturation.estimate_contrasts``)."""
+    results = saturation.estimate_contrasts(scenario.design.saturation, [k[1] for k in keys], W, Y, sizes, arms)
+    return {k: EstimateBatch(k[1], k[2], *results[k[1]], None) for k in keys}
+
+
 @dataclass(eq=False)
 class _PreparedGraph:
     """A graph with its estimator preparation, assignments and noise: reusable across runs."""
@@ -403,27 +489,43 @@ class _PreparedGraph:
     true_single: object | None = None
     observed: ObservedNetwork | None = None
     ht_prep: GraphPreparation | None = None
+    # A clustered design: each cluster's arm per assignment (clusters, B; 0 = pure control);
+    # a cluster random effect: its draws per cluster and assignment (clusters, B).
+    arms_all: np.ndarray | None = None
+    cluster_effects: np.ndarray | None = None
+    contrast_cache: dict = field(default_factory=dict)  # saturation.contrast_truths' exposure expectations
 
 
-def _estimands(g: _PreparedGraph, model: OutcomeModel, pi: float) -> Estimands:
+def _estimands(g: _PreparedGraph, model: OutcomeModel, pi: float, scenario: Scenario | None = None) -> Estimands:
     """Exact estimands of ``model`` on the graph; O(1) per model for continuous outcomes."""
     if model.kind != "continuous":
-        return exact_estimands(g.net.degrees, g.theta, model, pi)
-    if g.moments is None or g.moments.shape_key != (model.spillover_shape, float(model.saturation_rate), float(model.threshold)):
-        g.moments = exposure_moments(g.net.degrees, g.theta, model, pi)
-    return estimands_from_moments(g.moments, model)
+        out = exact_estimands(g.net.degrees, g.theta, model, pi)
+    else:
+        if g.moments is None or g.moments.shape_key != (model.spillover_shape, float(model.saturation_rate), float(model.threshold)):
+            g.moments = exposure_moments(g.net.degrees, g.theta, model, pi)
+        out = estimands_from_moments(g.moments, model)
+    if scenario is not None and scenario.design.saturation is not None:
+        out = replace(out, contrasts=contrast_truths(scenario, model, g.net.degrees, g.theta, g.net.cluster_sizes, g.contrast_cache))
+    return out
+
+
+def contrast_truths(
+    scenario: Scenario, model: OutcomeModel, degrees: np.ndarray, theta: np.ndarray, cluster_sizes: np.ndarray, cache: dict | None = None
+) -> dict[str, float]:
+    """Exact truths of a clustered design's planned contrasts on one graph (``saturation.contrast_truths``)."""
+    design = scenario.design.saturation
+    names = saturation.contrast_names(design)
+    counts = saturation.arm_counts(design, len(cluster_sizes))
+    return saturation.contrast_truths(model, design, names, degrees, theta, cluster_sizes, counts, cache)
 
 
 def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int, batch_size: int = 16) -> _PreparedGraph:
     entropy = scenario.simulation.seed
-    n, pi = point.units, point.treatment_probability
+    n = point.units
     # Before anything is drawn: a graph that cannot fit stops with the estimate, not an out-of-memory kill.
     check_memory(scenario, n, batch_size=batch_size)
-    types_rng, graph_rng = _graph_streams(entropy, n, graph_index)
-    bounds = None
-    if scenario.network.kind == "kernel":
-        bounds = scenario.network.cell_bounds(kernel_grid_cells(n))
-    net = sample_network(scenario.network, scenario.density, n, types_rng=types_rng, graph_rng=graph_rng, cell_bounds=bounds)
+    net = sample_point_network(scenario, point, graph_index)
+    n = net.adjacency.shape[0]  # a clustered population's total varies with drawn cluster sizes
     theta = scenario.outcome.type_values(net.types, net.blocks)
     # The analyst's network: the survey's when the scenario measures it (METHODS.md §7), else the true one.
     observed = observed_network(scenario, net, n, graph_index)
@@ -431,14 +533,19 @@ def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int, batch_siz
     degrees = observed.degrees if observed is not None else net.degrees
     prep = prepare_graph(
         analysed,
-        n_eigenvectors=scenario.estimators.eigenvectors,
+        # A clustered design's contrasts read no eigenvectors: skip the eigen-solver.
+        n_eigenvectors=0 if scenario.design.saturation is not None else scenario.estimators.eigenvectors,
         mean_degree_hint=float(degrees.mean()) if n else 0.0,
         two_hop="two_hop" in scenario.estimators.direct_variance and n <= TWO_HOP_MAX_UNITS,
         check_input=False,  # graphs.to_csr builds symmetric 0/1 canonical CSR by construction
     )
-    assign_rng, noise_rng, covariate_rng = _assignment_streams(entropy, point, graph_index)
+    assign_rng, noise_rng, covariate_rng, cluster_rng = _assignment_streams(entropy, point, graph_index)
     B = scenario.simulation.assignments_per_graph
-    W_all = assign_rng.random((n, B)) < pi
+    W_all, arms_all = draw_assignments(scenario, net, point, assign_rng)
+    cluster_effects = None
+    if point.clusters and scenario.outcome.cluster_icc > 0:
+        sd = cluster_effect_sd(scenario.outcome, scenario.network, scenario.outcome.cluster_icc)
+        cluster_effects = sd * cluster_rng.standard_normal((point.clusters, B))
     if scenario.outcome.kind == "continuous":
         noise_all = noise_rng.standard_normal((n, B))
     else:
@@ -455,7 +562,10 @@ def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int, batch_siz
         if scenario.measurement.augmented:
             # Only the HT estimator reads these fields: adjacency (weighted) and n_units.
             ht_prep = replace(prep, adjacency=inclusion_weights(observed, scenario.measurement))
-    return _PreparedGraph(net, theta, prep, W_all, noise_all, covariates_all, true_single=true_single, observed=observed, ht_prep=ht_prep)
+    return _PreparedGraph(
+        net, theta, prep, W_all, noise_all, covariates_all, true_single=true_single, observed=observed, ht_prep=ht_prep,
+        arms_all=arms_all, cluster_effects=cluster_effects,
+    )
 
 
 def example_network(scenario: Scenario, point: DesignPoint, graph_index: int = 0) -> tuple[SampledNetwork, np.ndarray]:
@@ -465,12 +575,10 @@ def example_network(scenario: Scenario, point: DesignPoint, graph_index: int = 0
     drawing in a report shows a network the simulation really used.  Returns
     the network and a boolean vector of treated units.
     """
-    types_rng, graph_rng = _graph_streams(scenario.simulation.seed, point.units, graph_index)
-    bounds = scenario.network.cell_bounds(kernel_grid_cells(point.units)) if scenario.network.kind == "kernel" else None
-    net = sample_network(scenario.network, scenario.density, point.units, types_rng=types_rng, graph_rng=graph_rng, cell_bounds=bounds)
+    net = sample_point_network(scenario, point, graph_index)
     assign_rng = _assignment_streams(scenario.simulation.seed, point, graph_index)[0]
     # The whole (n, B) block is drawn as in _prepare so that column 0 is the engine's first assignment.
-    treated = assign_rng.random((point.units, scenario.simulation.assignments_per_graph))[:, 0] < point.treatment_probability
+    treated = draw_assignments(scenario, net, point, assign_rng)[0][:, 0]
     return net, treated
 
 
@@ -499,6 +607,7 @@ def _footprint(prepared: _PreparedGraph) -> int:
     prep = prepared.prep
     values = [getattr(prep, f) for f in getattr(prep, "__dataclass_fields__", {})]
     values += [prepared.covariates_all, prepared.W_all, prepared.noise_all, prepared.net.adjacency, prepared.theta, prepared.true_single]
+    values += [prepared.arms_all, prepared.cluster_effects]
     if prepared.ht_prep is not None:
         values.append(prepared.ht_prep.adjacency)
     seen: dict[tuple[int, int], int] = {}
@@ -588,22 +697,26 @@ def _simulate_graph(
     keep_units: bool,
 ) -> GraphDraws:
     runs = power_runs(scenario) if runs is None else runs
-    n, pi = point.units, point.treatment_probability
+    pi = point.treatment_probability
     g = cache.get(scenario, point, graph_index, batch_size) if cache is not None else _prepare(scenario, point, graph_index, batch_size)
     degrees = g.net.degrees
-    available = planned_keys(scenario, n)
+    n = len(degrees)
+    available = planned_keys(scenario, point.units)
     run_keys = {
         run.label: [k for k in available if k[0] in run.estimands and (run.keys is None or k in run.keys)] for run in runs
     }
     draws = GraphDraws(
-        runs={run.label: RunDraws(_estimands(g, run.model, pi)) for run in runs},
+        runs={run.label: RunDraws(_estimands(g, run.model, pi, scenario)) for run in runs},
         mean_degree=float(degrees.mean()) if n else 0.0,
         share_isolated=float(np.mean(degrees == 0)) if n else 0.0,
         n_eigenvectors=g.prep.n_eigenvectors,
         min_shrinkage=g.prep.min_shrinkage,
-        control_variance=control_variance(scenario.outcome, g.theta),
+        # With a cluster random effect the outcome's SD counts it too (effects in SD units, designcalc.clusters).
+        control_variance=control_variance(scenario.outcome, g.theta)
+        + (cluster_effect_sd(scenario.outcome, scenario.network, scenario.outcome.cluster_icc) ** 2 if point.clusters else 0.0),
         degrees=degrees if keep_units else None,
         theta=g.theta if keep_units else None,
+        cluster_sizes=g.net.cluster_sizes if keep_units else None,
     )
     safe_degrees = np.maximum(degrees, 1)[:, None]
     B = g.W_all.shape[1]
@@ -622,6 +735,10 @@ def _simulate_graph(
         else:
             X = counts / safe_degrees
         exposure: list[np.ndarray] = []
+        arms = g.arms_all[:, start : start + batch_size] if g.arms_all is not None else None
+        if g.cluster_effects is not None:
+            # Every unit shares its cluster's effect (contiguous clusters, designcalc.clusters).
+            shift = np.repeat(g.cluster_effects[:, start : start + batch_size], g.net.cluster_sizes, axis=0)
 
         def batch_exposure(W: np.ndarray = W, counts: np.ndarray = counts, exposure: list[np.ndarray] = exposure) -> np.ndarray:
             if not exposure:
@@ -632,7 +749,12 @@ def _simulate_graph(
             if not run_keys[run.label]:
                 continue  # a run kept for its exact estimands only
             Y = _outcomes(run.model, g.theta, W, X, noise)
-            batches = _run_estimators(scenario, g.prep, W, Y, pi, run_keys[run.label], draws.failures, C, batch_exposure, g.ht_prep)
+            if g.cluster_effects is not None:
+                Y += shift
+            if arms is not None:
+                batches = _run_contrasts(scenario, W, Y, g.net.cluster_sizes, arms, run_keys[run.label])
+            else:
+                batches = _run_estimators(scenario, g.prep, W, Y, pi, run_keys[run.label], draws.failures, C, batch_exposure, g.ht_prep)
             chunks[run.label].append(({k: v.estimate for k, v in batches.items()}, {k: v.standard_error for k, v in batches.items()}))
     for run in runs:
         if not run_keys[run.label]:

@@ -9,7 +9,7 @@ is O(n + edges).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import scipy.special
@@ -40,9 +40,17 @@ class Estimands:
     global_effect: float
     mean_outcome: float
     share_isolated: float
+    # A clustered design's contrasts (estimator name -> exact truth, designcalc.saturation); empty otherwise.
+    contrasts: dict[str, float] = field(default_factory=dict, compare=False)
 
     def value(self, estimand: str) -> float:
         return float(getattr(self, estimand))
+
+    def truth(self, key: tuple[str, str, str]) -> float:
+        """What the test ``key`` = (estimand, estimator, variance) estimates: its contrast's truth, else the estimand's."""
+        if key[1] in self.contrasts:
+            return float(self.contrasts[key[1]])
+        return self.value(key[0])
 
     def to_dict(self) -> dict[str, float]:
         return {

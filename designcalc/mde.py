@@ -40,6 +40,8 @@ import scipy.optimize
 import scipy.stats
 
 from designcalc.engine import (
+    contrast_truths,
+    test_reference,
     ESTIMANDS,
     DesignPoint,
     EngineProgress,
@@ -52,7 +54,7 @@ from designcalc.engine import (
 )
 from designcalc.errors import ModelError
 from designcalc.estimands import exact_estimands
-from designcalc.inference import Z95, critical_value, floored_power_se, mde_multiplier, probit, reference_distribution
+from designcalc.inference import Z95, critical_value, floored_power_se, mde_multiplier, probit
 from designcalc.outcomes import OutcomeModel
 from designcalc.power import CAUTIONS, FlaggedRecord, ResultTable, clustered_mean_se, clustered_sd, provenance, reject, stack_run
 from designcalc.execution import Cluster, check_workers, simulate_graphs
@@ -100,6 +102,7 @@ class MdeRecord(FlaggedRecord):
     replicates: int
     direction: int
     flags: tuple[str, ...] = ()
+    clusters: int = 0  # a clustered population's number of clusters (``units`` is then their nominal total)
 
 
 @dataclass(frozen=True)
@@ -171,13 +174,16 @@ class _Track:
         return "mde:" + "/".join(self.key)
 
 
-def _mean_effect(draws: Sequence[GraphDraws], model: OutcomeModel, estimand: str, pi: float) -> float:
-    """Mean over graphs of the exact estimand of ``model`` (graphs kept with keep_units=True)."""
-    values = [exact_estimands(d.degrees, d.theta, model, pi).value(estimand) for d in draws]
+def _mean_effect(draws: Sequence[GraphDraws], model: OutcomeModel, key: tuple[str, str, str], pi: float, scenario: Scenario) -> float:
+    """Mean over graphs of the exact truth of test ``key`` under ``model`` (graphs kept with keep_units=True)."""
+    if scenario.design.saturation is not None:
+        values = [contrast_truths(scenario, model, d.degrees, d.theta, d.cluster_sizes)[key[1]] for d in draws]
+    else:
+        values = [exact_estimands(d.degrees, d.theta, model, pi).value(key[0]) for d in draws]
     return float(np.mean(values))
 
 
-def _factor_for(track: _Track, target: float, draws: Sequence[GraphDraws], pi: float) -> tuple[float, float]:
+def _factor_for(track: _Track, target: float, draws: Sequence[GraphDraws], pi: float, scenario: Scenario) -> tuple[float, float]:
     """Scale factor whose mean true estimand is ``target`` (magnitude along the direction), and that estimand.
 
     Continuous outcomes: every estimand is linear in the effect
@@ -194,7 +200,7 @@ def _factor_for(track: _Track, target: float, draws: Sequence[GraphDraws], pi: f
     estimand = track.key[0]
 
     def effect(c: float) -> float:
-        return track.direction * _mean_effect(draws, track.base.scaled_for(estimand, c), estimand, pi)
+        return track.direction * _mean_effect(draws, track.base.scaled_for(estimand, c), track.key, pi, scenario)
 
     high = target / track.base_effect
     for _ in range(40):
@@ -305,6 +311,7 @@ def minimum_detectable_effects(
     workers: int = 1,
     cluster: Cluster | None = None,
     store: ResultStore | None = None,
+    clusters: Sequence[int] | None = None,
 ) -> MdeResult:
     """Minimum detectable direct, spillover and total effects of every planned test.
 
@@ -346,7 +353,7 @@ def minimum_detectable_effects(
     """
     from designcalc.power import _override
 
-    scenario = _override(scenario, units, treatment_probabilities, graphs, assignments_per_graph, seed)
+    scenario = _override(scenario, units, treatment_probabilities, graphs, assignments_per_graph, seed, clusters)
     sim = scenario.simulation
     precision = sim.relative_precision if relative_precision is None else relative_precision
     cap = sim.max_graphs if max_graphs is None else max(max_graphs, sim.graphs)
@@ -437,7 +444,7 @@ def _design_point(
     null_summary: dict[tuple[str, str, str], tuple[float, float, float, float, float]] = {}
     for key in keys:
         estimand, estimator, _ = key
-        reference = reference_distribution(design.reference_distribution, estimand, estimator, point.units, scenario.n_covariates)
+        reference = test_reference(scenario, point, key)
         critical = critical_value(alpha, alternative, reference.df)
         multiplier = mde_multiplier(alpha, target, alternative, reference.df)
         est, se, _ = stack_run(null_draws, null_label(estimand), key)
@@ -448,7 +455,7 @@ def _design_point(
         mean_se = float(np.nanmean(np.where(ok, se, np.nan))) if ok.any() else float("nan")
         null_summary[key] = (sd, sd_se, mean_se, size, size_se)
         base = effect_direction_model(scenario.outcome, estimand)
-        base_effect = float(np.mean([d.runs[f"direction:{estimand}"].estimands.value(estimand) for d in null_draws]))
+        base_effect = float(np.mean([d.runs[f"direction:{estimand}"].estimands.truth(key) for d in null_draws]))
         if alternative == "greater":
             direction = 1
         elif alternative == "less":
@@ -472,7 +479,7 @@ def _design_point(
         active = [t for t in tracks if not t.done and math.isfinite(t.formula) and t.formula > 0]
         for t in active:
             try:
-                t.factor, t.effect = _factor_for(t, t.formula, null_draws, pi)
+                t.factor, t.effect = _factor_for(t, t.formula, null_draws, pi, scenario)
             except ModelError as exc:
                 t.unreachable, t.done = f"not reachable: {exc}", True
         active = [t for t in active if not t.done]
@@ -484,7 +491,7 @@ def _design_point(
                 draws_by_track[t.label] = new
                 t.power, t.power_se, t.sd, t.mean_se, t.mean_estimate, t.replicates, t.failed = _rates(new, t.label, t.key, t.critical, alternative)
                 t.graphs = len(new)
-                t.effect = float(np.mean([d.runs[t.label].estimands.value(t.key[0]) for d in new])) * t.direction
+                t.effect = float(np.mean([d.runs[t.label].estimands.truth(t.key) for d in new])) * t.direction
                 if t.steps == 0:
                     t.formula_power, t.formula_power_se = t.power, t.power_se
             still = []
@@ -510,7 +517,7 @@ def _design_point(
                     # Keep each step within a factor of 2 of the current effect.
                     new_effect = min(max(_model_step(t, target, alternative), 0.5 * t.effect), 2.0 * t.effect)
                     try:
-                        t.factor, t.effect = _factor_for(t, new_effect, null_draws, pi)
+                        t.factor, t.effect = _factor_for(t, new_effect, null_draws, pi, scenario)
                     except ModelError as exc:
                         t.unreachable, t.done = f"not reachable: {exc}", True
                         continue
@@ -559,7 +566,7 @@ def _design_point(
             for t in loose:
                 t.power, t.power_se, t.sd, t.mean_se, t.mean_estimate, t.replicates, t.failed = _rates(draws_by_track[t.label], t.label, t.key, t.critical, alternative)
                 t.graphs = len(draws_by_track[t.label])
-                t.effect = t.direction * float(np.mean([d.runs[t.label].estimands.value(t.key[0]) for d in draws_by_track[t.label]]))
+                t.effect = t.direction * float(np.mean([d.runs[t.label].estimands.truth(t.key) for d in draws_by_track[t.label]]))
 
     records = []
     for t in tracks:
@@ -635,6 +642,7 @@ def _design_point(
                 replicates=n_graphs * scenario.simulation.assignments_per_graph,
                 direction=t.direction,
                 flags=tuple(flags[1:]),
+                clusters=point.clusters,
             )
         )
     return records

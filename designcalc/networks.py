@@ -22,11 +22,16 @@ __all__ = ["SampledNetwork", "sample_network", "kernel_grid_cells"]
 
 @dataclass(frozen=True, eq=False)
 class SampledNetwork:
-    """A simulated network: adjacency, latent types (sorted) and block labels."""
+    """A simulated network: adjacency, latent types (sorted) and block labels.
+
+    ``cluster_sizes`` is set for a clustered population (``designcalc.clusters``):
+    the sizes of its clusters, whose units are contiguous in this order.
+    """
 
     adjacency: sp.sparse.csr_array
     types: np.ndarray
     blocks: np.ndarray | None
+    cluster_sizes: np.ndarray | None = None
 
     @property
     def degrees(self) -> np.ndarray:

@@ -81,6 +81,8 @@ class OutcomeModel:
     threshold: float = 0.5
     interaction: float = 0.0
     link: str = "identity"
+    # Intracluster correlation of a normal cluster random effect (clustered populations, designcalc.clusters).
+    cluster_icc: float = 0.0
 
     def __post_init__(self) -> None:
         if self.kind not in ("continuous", "binary"):
@@ -89,6 +91,8 @@ class OutcomeModel:
             raise ModelError(f"unknown spillover shape {self.spillover_shape!r}")
         if self.link not in ("identity", "logistic"):
             raise ModelError(f"link must be 'identity' or 'logistic'; got {self.link!r}")
+        if not 0.0 <= self.cluster_icc < 1.0:
+            raise ModelError(f"cluster_icc must be in [0, 1); got {self.cluster_icc}")
         if not self.noise_sd >= 0:
             raise ModelError(f"noise_sd must be >= 0; got {self.noise_sd}")
         if self.type_effect:
@@ -173,6 +177,8 @@ class OutcomeModel:
         scale = "continuous outcome" if self.kind == "continuous" else f"binary outcome ({self.link} link)"
         hetero = self.type_effect or (f"block effects {list(self.block_effects)}" if self.block_effects else "none")
         noise = f", noise SD {self.noise_sd:g}" if self.kind == "continuous" else ""
+        if self.cluster_icc > 0:
+            noise += f", cluster random effect (ICC {self.cluster_icc:g})"
         return (
             f"{scale}: baseline {self.baseline:g}, type effect {hetero}{noise}; direct effect "
             f"{self.direct_effect:g}, spillover {self.spillover_effect:g} with {shape}, "

@@ -22,6 +22,7 @@ import scipy.stats
 
 from designcalc._version import __version__
 from designcalc.engine import (
+    test_reference,
     STREAM_LAYOUT_VERSION,
     DesignPoint,
     EngineProgress,
@@ -30,7 +31,8 @@ from designcalc.engine import (
     dropped_keys,
 )
 from designcalc.errors import DesignCalcError
-from designcalc.inference import Z95, critical_value, floored_power_se, reference_distribution
+from designcalc.inference import Z95, critical_value, floored_power_se
+from designcalc.saturation import check_clusters
 from designcalc.scenario import Scenario
 
 if TYPE_CHECKING:
@@ -112,7 +114,7 @@ def stack_run(draws: Sequence[GraphDraws], label: str, key: tuple[str, str, str]
     """Estimates and SEs as (graphs, assignments) arrays and the per-graph true estimand, for one run and key."""
     est = np.stack([d.runs[label].estimates[key] for d in draws])
     se = np.stack([d.runs[label].standard_errors[key] for d in draws])
-    truth = np.array([d.runs[label].estimands.value(key[0]) for d in draws])
+    truth = np.array([d.runs[label].estimands.truth(key) for d in draws])
     return est, se, truth
 
 
@@ -179,6 +181,7 @@ class PowerRecord(FlaggedRecord):
     failed_replicates: int
     flags: tuple[str, ...] = ()
     reference_distribution: str = "normal"
+    clusters: int = 0  # a clustered population's number of clusters (``units`` is then their nominal total)
 
 
 @dataclass(frozen=True)
@@ -201,14 +204,14 @@ def summarise_design_point(scenario: Scenario, point: DesignPoint, draws: Sequen
     records = []
     for key in draws[0].estimates:
         estimand, estimator, variance = key
-        reference = reference_distribution(scenario.design.reference_distribution, estimand, estimator, point.units, scenario.n_covariates)
+        reference = test_reference(scenario, point, key)
         z = critical_value(alpha, alternative, reference.df)
         z_ci = critical_value(alpha, "two-sided", reference.df)
         est = np.stack([d.estimates[key] for d in draws])
         se = np.stack([d.standard_errors[key] for d in draws])
         nest = np.stack([d.null_estimates[key] for d in draws])
         nse = np.stack([d.null_standard_errors[key] for d in draws])
-        truth = np.array([d.estimands.value(estimand) for d in draws])[:, None]
+        truth = np.array([d.estimands.truth(key) for d in draws])[:, None]
         valid = np.isfinite(est) & np.isfinite(se)
         nvalid = np.isfinite(nest) & np.isfinite(nse)
 
@@ -269,6 +272,7 @@ def summarise_design_point(scenario: Scenario, point: DesignPoint, draws: Sequen
                 failed_replicates=int(est.size - valid.sum()),
                 flags=tuple(flags),
                 reference_distribution=reference.name,
+                clusters=point.clusters,
             )
         )
     return records
@@ -299,7 +303,28 @@ def provenance(scenario: Scenario, **settings: object) -> dict[str, object]:
     }
 
 
-def _override(scenario: Scenario, units: Sequence[int] | None, probabilities: Sequence[float] | None, graphs: int | None, assignments_per_graph: int | None, seed: int | None) -> Scenario:
+def _override(
+    scenario: Scenario, units: Sequence[int] | None, probabilities: Sequence[float] | None, graphs: int | None,
+    assignments_per_graph: int | None, seed: int | None, clusters: Sequence[int] | None = None,
+) -> Scenario:
+    population = scenario.population
+    if units and population.clustered:
+        raise DesignCalcError(f"--units: {scenario.source} plans a clustered population; give its number of clusters with --clusters")
+    if clusters and not population.clustered:
+        raise DesignCalcError(f"--clusters: {scenario.source} plans one network, not clusters; give its size with --units")
+    if clusters and population.cluster_sizes.kind == "list":
+        raise DesignCalcError(f"--clusters: {scenario.source} states every cluster's size (population.cluster_sizes), which fixes their number")
+    if probabilities and scenario.design.saturation is not None:
+        raise DesignCalcError(
+            f"--treatment-probability: {scenario.source} assigns by clusters (design.assignment); its arms set who is treated. "
+            "To weigh other arms, write them as another scenario and put both side by side with `designcalc compare`"
+        )
+    if clusters:
+        counts = tuple(sorted(set(clusters)))
+        for c in counts:
+            if scenario.design.saturation is not None:
+                check_clusters(scenario.design.saturation, c)
+        scenario = replace(scenario, population=replace(population, clusters=counts, units=tuple(population.nominal_units(c) for c in counts)))
     if units and scenario.network.kind == "surveyed" and tuple(sorted(set(units))) != scenario.population.units:
         raise DesignCalcError(
             f"--units {', '.join(str(u) for u in units)}: {scenario.source} plans on a surveyed network of "
@@ -334,6 +359,7 @@ def simulate_power(
     workers: int = 1,
     cluster: "Cluster | None" = None,
     store: "ResultStore | None" = None,
+    clusters: Sequence[int] | None = None,
 ) -> PowerResult:
     """Simulate the power of every planned estimator at every design point.
 
@@ -344,6 +370,9 @@ def simulate_power(
     units, treatment_probabilities, graphs, assignments_per_graph, seed
         Optional overrides of the scenario's values (validate them first;
         the command line does).
+    clusters
+        Numbers of clusters, overriding ``population.clusters`` of a
+        clustered population (``units`` is refused for one).
     batch_size
         Assignment columns processed at once; a speed knob that never changes
         the numbers.
@@ -394,7 +423,7 @@ def simulate_power(
     from designcalc.execution import check_workers, simulate_graphs
 
     workers = check_workers(workers)
-    scenario = _override(scenario, units, treatment_probabilities, graphs, assignments_per_graph, seed)
+    scenario = _override(scenario, units, treatment_probabilities, graphs, assignments_per_graph, seed, clusters)
     points = design_points(scenario)
     total = len(points) * scenario.simulation.graphs
     started = time.perf_counter()

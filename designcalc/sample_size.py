@@ -25,6 +25,15 @@ all.  For every treatment probability and planned test:
 Sizes are simulated at integers rounded to three significant figures above
 1000, so tests whose answers are close share simulations; every simulated
 point is reported.
+
+For a clustered population the size searched is the number of clusters (at
+the scenario's cluster sizes) or, with ``cluster_size_for`` = C, the size of
+every one of C clusters (``SizeAxis``); everything above holds with n read
+as that number.  Beside the simulated answer, a two-stage design's
+saturation contrasts get the closed-form answer of METHODS.md §5.2
+(``designcalc.cluster_formulas``: no network, equal clusters), and a search
+over cluster sizes says how much power even infinitely large clusters would
+give (METHODS.md §5.3: with a large ICC, power comes from clusters).
 """
 
 from __future__ import annotations
@@ -38,6 +47,7 @@ from typing import TYPE_CHECKING, Callable, Sequence
 import numpy as np
 import scipy.stats
 
+from designcalc import cluster_formulas
 from designcalc.engine import (
     ALTERNATIVE,
     ESTIMANDS,
@@ -46,22 +56,77 @@ from designcalc.engine import (
     EngineProgress,
     GraphDraws,
     Run,
+    clustered_point,
     null_label,
     planned_keys,
+    test_reference,
 )
 from designcalc.errors import DesignCalcError
 from designcalc.execution import Cluster, check_workers, simulate_graphs
-from designcalc.inference import Z95, critical_value, floored_power_se, probit, reference_distribution
+from designcalc.inference import Z95, critical_value, floored_power_se, probit
 from designcalc.power import CAUTIONS, FlaggedRecord, ResultTable, clustered_mean_se, clustered_sd, provenance, reject, stack_run
 from designcalc.scenario import Scenario
 
 if TYPE_CHECKING:
     from designcalc.store import ResultStore
 
-__all__ = ["SizePoint", "SizeRecord", "SizeResult", "required_sample_size", "MAX_ADJACENCY_ENTRIES"]
+__all__ = ["SizeAxis", "SizePoint", "SizeRecord", "SizeResult", "required_sample_size", "MAX_ADJACENCY_ENTRIES"]
 
 MAX_ADJACENCY_ENTRIES = 40_000_000  # ~ 0.5 GB of sparse adjacency; larger sizes are not simulated
 _MAX_REFINE_STEPS = 12
+
+
+@dataclass(frozen=True)
+class SizeAxis:
+    """What the search counts: ``"units"`` of one network, ``"clusters"``, or ``"cluster_size"`` of ``clusters`` clusters."""
+
+    name: str = "units"
+    clusters: int = 0
+
+    @property
+    def noun(self) -> str:
+        return {"units": "units", "clusters": "clusters", "cluster_size": "units per cluster"}[self.name]
+
+    def point(self, scenario: Scenario, n: int, pi: float) -> DesignPoint:
+        if self.name == "clusters":
+            return clustered_point(scenario, n, pi)
+        if self.name == "cluster_size":
+            return clustered_point(scenario, self.clusters, pi, cluster_size=n)
+        return DesignPoint(n, pi)
+
+    def smallest(self, scenario: Scenario, pi: float) -> int:
+        """The smallest size the design allows."""
+        if self.name == "clusters":
+            design = scenario.design.saturation
+            c = 2
+            if design is not None:
+                while c < 10_000 and min(_arm_counts(design, c)) < 2:
+                    c += 1
+            return max(c, 4)
+        if self.name == "cluster_size":
+            m = 4
+            while scenario.density.target_mean_degree(m) >= m - 1:
+                m += 1
+            return m
+        return max(8, math.ceil(4 / min(pi, 1 - pi)))
+
+    def allowed(self, scenario: Scenario, n: int) -> bool:
+        """Whether the density rule can be met at this size (a unit links to at most m - 1 others)."""
+        m = n if self.name == "units" else (n if self.name == "cluster_size" else scenario.population.cluster_sizes.smallest)
+        return scenario.density.target_mean_degree(m) < m - 1
+
+    def adjacency_entries(self, scenario: Scenario, n: int) -> float:
+        if self.name == "units":
+            return n * scenario.density.target_mean_degree(n)
+        m = n if self.name == "cluster_size" else scenario.population.cluster_sizes.nominal
+        clusters = self.clusters if self.name == "cluster_size" else n
+        return clusters * m * scenario.density.target_mean_degree(int(round(m)))
+
+
+def _arm_counts(design, clusters: int):
+    from designcalc.saturation import arm_counts
+
+    return arm_counts(design, clusters)
 
 
 @dataclass(frozen=True)
@@ -101,6 +166,13 @@ class SizeRecord(FlaggedRecord):
     flags: tuple[str, ...] = ()
     size: float = float("nan")  # the feasible test's rejection rate under the null, at verified_units
     size_mc_se: float = float("nan")
+    # What required_units, units_low/high, verified_units and the points count (SizeAxis.name),
+    # and the fixed number of clusters of a search over cluster sizes.
+    size_axis: str = "units"
+    clusters: int = 0
+    # A two-stage design's closed-form answer (METHODS.md §5.2, no network; cluster_formulas), and its note.
+    closed_form: float = float("nan")
+    closed_form_note: str = ""
 
     def to_dict(self) -> dict[str, object]:
         d = super().to_dict()
@@ -145,9 +217,10 @@ class _Sizes:
 
     def __init__(
         self, scenario: Scenario, pi: float, batch_size: int, tick: Callable[[], None], workers: int = 1,
-        cluster: Cluster | None = None, store: "ResultStore | None" = None,
+        cluster: Cluster | None = None, store: "ResultStore | None" = None, axis: SizeAxis = SizeAxis(),
     ) -> None:
         self.scenario = scenario
+        self.axis = axis
         self.workers = workers
         self.cluster = cluster
         self.store = store
@@ -163,7 +236,7 @@ class _Sizes:
 
     def ensure(self, n: int, graphs: int, keys: Sequence[tuple[str, str, str]] = ()) -> None:
         have = self.draws.setdefault(n, [])
-        point = DesignPoint(n, self.pi)
+        point = self.point(n)
         tasks = [(point, g) for g in range(len(have), graphs)]
         with closing(simulate_graphs(self.scenario, tasks, workers=self.workers, batch_size=self.batch_size, runs=self.run, cluster=self.cluster, store=self.store)) as stream:
             for draws in stream:
@@ -183,7 +256,7 @@ class _Sizes:
         """Rejection rate (and MC se) of the test under the null of its estimand at n, on the same graphs and assignments."""
         label = null_label(key[0])
         run = [Run(label, self.scenario.outcome.null_for(key[0]), (key[0],), frozenset({key}))]
-        point = DesignPoint(n, self.pi)
+        point = self.point(n)
         draws = []
         tasks = [(point, g) for g in range(graphs)]
         with closing(simulate_graphs(self.scenario, tasks, workers=self.workers, batch_size=self.batch_size, runs=run, cluster=self.cluster, store=self.store)) as stream:
@@ -191,7 +264,7 @@ class _Sizes:
                 draws.append(d)
                 self.tick()
         design = self.scenario.design
-        reference = reference_distribution(design.reference_distribution, key[0], key[1], n, self.scenario.n_covariates)
+        reference = test_reference(self.scenario, point, key)
         critical = critical_value(design.significance_level, design.alternative, reference.df)
         est, se, _ = stack_run(draws, label, key)
         ok = np.isfinite(est) & np.isfinite(se)
@@ -205,7 +278,7 @@ class _Sizes:
         if not draws or key not in draws[0].runs[ALTERNATIVE].estimates:
             return None
         design = self.scenario.design
-        reference = reference_distribution(design.reference_distribution, key[0], key[1], n, self.scenario.n_covariates)
+        reference = test_reference(self.scenario, self.point(n), key)
         critical = critical_value(design.significance_level, design.alternative, reference.df)
         est, se, truth = stack_run(draws, ALTERNATIVE, key)
         ok = np.isfinite(est) & np.isfinite(se)
@@ -215,6 +288,9 @@ class _Sizes:
         mean_est, _ = clustered_mean_se(np.where(ok, est, np.nan))
         mean_se = float(np.nanmean(np.where(ok, se, np.nan))) if ok.any() else float("nan")
         return _Summary(power, power_se, sd, mean_se, mean_est, float(truth.mean()), int(ok.sum()), int(est.size - ok.sum()))
+
+    def point(self, n: int) -> DesignPoint:
+        return self.axis.point(self.scenario, n, self.pi)
 
     def points(self, key: tuple[str, str, str]) -> tuple[SizePoint, ...]:
         out = []
@@ -250,11 +326,12 @@ def _local_trend(points: Sequence[tuple[int, _Summary]], n: float) -> tuple[floa
     return sd, se, mean
 
 
-def _predicted_power(scenario: Scenario, key: tuple[str, str, str], n: float, points: Sequence[tuple[int, _Summary]]) -> float:
+def _predicted_power(sizes: _Sizes, key: tuple[str, str, str], n: float, points: Sequence[tuple[int, _Summary]]) -> float:
     """Normal-approximation power of the feasible test at n from the local trend."""
     sd, se, mean = _local_trend(points, n)
+    scenario = sizes.scenario
     design = scenario.design
-    reference = reference_distribution(design.reference_distribution, key[0], key[1], max(int(round(n)), 4), scenario.n_covariates)
+    reference = test_reference(scenario, sizes.point(max(int(round(n)), 4)), key)
     q = critical_value(design.significance_level, design.alternative, reference.df)
     if design.alternative == "greater":
         return float(scipy.stats.norm.cdf((mean - q * se) / sd))
@@ -287,8 +364,10 @@ def required_sample_size(
     workers: int = 1,
     cluster: Cluster | None = None,
     store: "ResultStore | None" = None,
+    cluster_size_for: int | None = None,
+    max_clusters: int | None = None,
 ) -> SizeResult:
-    """Units needed for the target power, per treatment probability and planned test (module docstring).
+    """Units (or clusters) needed for the target power, per treatment probability and planned test (module docstring).
 
     Parameters
     ----------
@@ -309,6 +388,12 @@ def required_sample_size(
     store
         A ``designcalc.store.ResultStore`` that keeps every simulated graph,
         so a rerun (or a report) reuses them; same numbers without it.
+    cluster_size_for, max_clusters
+        A clustered population's search counts clusters (up to
+        ``max_clusters``, default ``population.max_clusters``); with
+        ``cluster_size_for`` = C it counts the units of every one of C
+        clusters instead (up to ``max_units``, default 16 times the mean
+        cluster size).
 
     Examples
     --------
@@ -334,7 +419,7 @@ def required_sample_size(
     sim = scenario.simulation
     precision = sim.relative_precision if relative_precision is None else relative_precision
     cap = sim.max_graphs if max_graphs is None else max(max_graphs, sim.graphs)
-    limit = max_units or scenario.population.search_limit
+    axis, limit = size_axis_and_limit(scenario, cluster_size_for, max_units, max_clusters)
     started = time.perf_counter()
     finished = 0
     records: list[SizeRecord] = []
@@ -349,18 +434,100 @@ def required_sample_size(
 
     try:
         for pi in scenario.design.treatment_probabilities:
-            sizes = _Sizes(scenario, pi, batch_size, tick, check_workers(workers), cluster, store)
-            records.extend(_search(scenario, sizes, limit, precision, cap, warnings))
+            sizes = _Sizes(scenario, pi, batch_size, tick, check_workers(workers), cluster, store, axis)
+            records.extend(_with_closed_form(scenario, axis, r) for r in _search(scenario, sizes, limit, precision, cap, warnings))
     except KeyboardInterrupt:
         partial = True
+    limits = {"max_units": limit} if axis.name != "clusters" else {"max_clusters": limit}
+    if axis.name != "units":
+        limits["size_axis"] = axis.name
+    if axis.name == "cluster_size":
+        limits["clusters"] = axis.clusters
     return SizeResult(
         scenario.name, tuple(records),
-        provenance(scenario, relative_precision=precision, max_graphs=cap, max_units=limit), tuple(warnings), partial,
+        provenance(scenario, relative_precision=precision, max_graphs=cap, **limits), tuple(warnings), partial,
     )
 
 
-def _memory_ok(scenario: Scenario, n: int) -> bool:
-    return n * scenario.density.target_mean_degree(n) <= MAX_ADJACENCY_ENTRIES
+def size_axis_and_limit(scenario: Scenario, cluster_size_for: int | None, max_units: int | None, max_clusters: int | None) -> tuple[SizeAxis, int]:
+    """What the search counts and how far it may go (``required_sample_size``'s parameters)."""
+    population = scenario.population
+    if not population.clustered:
+        if cluster_size_for is not None or max_clusters is not None:
+            raise DesignCalcError(f"{scenario.source} plans one network, not clusters: search its units (leave out the cluster options)")
+        return SizeAxis(), max_units or population.search_limit
+    if cluster_size_for is not None:
+        if scenario.design.saturation is not None:
+            from designcalc.saturation import check_clusters
+
+            try:
+                check_clusters(scenario.design.saturation, cluster_size_for)
+            except DesignCalcError as exc:
+                raise DesignCalcError(f"--per-cluster {cluster_size_for}: {exc}") from None
+        limit = max_units or max(16 * int(round(population.cluster_sizes.nominal)), 64)
+        return SizeAxis("cluster_size", cluster_size_for), min(limit, 2_000_000 // cluster_size_for)
+    if max_units is not None:
+        raise DesignCalcError("--max-units bounds a search over cluster sizes (--per-cluster); a search over clusters is bounded by --max-clusters")
+    if population.cluster_sizes.kind == "list":
+        raise DesignCalcError(
+            f"{scenario.source} states every cluster's size (population.cluster_sizes), which fixes their number; "
+            "give cluster_size (a number or a distribution) to search the number of clusters, or search cluster sizes with --per-cluster"
+        )
+    return SizeAxis("clusters"), max_clusters or population.cluster_search_limit
+
+
+def _with_closed_form(scenario: Scenario, axis: SizeAxis, record: SizeRecord) -> SizeRecord:
+    """Label the record with its axis and, for a saturation contrast, add METHODS.md §5.2's closed-form answer."""
+    from dataclasses import replace as _replace
+
+    record = _replace(record, size_axis=axis.name, clusters=axis.clusters)
+    design = scenario.design.saturation
+    if design is None or axis.name == "units":
+        return record
+    value, note = _closed_form(scenario, axis, record)
+    return _replace(record, closed_form=value, closed_form_note=note)
+
+
+def _closed_form(scenario: Scenario, axis: SizeAxis, record: SizeRecord) -> tuple[float, str]:
+    """Closed-form clusters (or the large-cluster limit) of a saturation-specific contrast; NaN where none applies."""
+    design = scenario.design.saturation
+    name = record.estimator
+    if "@" not in name or not record.points:
+        return float("nan"), ""
+    kind, label = name.split("@")
+    p = float(label)
+    j = min(range(len(design.saturations)), key=lambda i: abs(design.saturations[i] - p))
+    effect = abs(record.points[-1].true_effect)
+    from designcalc.clusters import cluster_effect_sd, within_cluster_sd
+
+    within = within_cluster_sd(scenario.outcome, scenario.network)
+    between = cluster_effect_sd(scenario.outcome, scenario.network, scenario.outcome.cluster_icc)
+    sigma = math.sqrt(within**2 + between**2)
+    icc = scenario.outcome.cluster_icc
+    d = scenario.design
+    if effect == 0 or sigma == 0:
+        return float("nan"), ""
+    m = scenario.population.cluster_sizes.nominal if axis.name == "clusters" else None
+    assumptions = "closed form of METHODS.md §5.2 (no network, equal clusters, normal approximation)"
+    if axis.name == "clusters":
+        answer = cluster_formulas.required_clusters(
+            effect, m, icc, design.pure_control_share, p, design.shares[j], {"dir": "dir"}.get(kind, kind),
+            alpha=d.significance_level, power=d.target_power, sigma=sigma, alternative=d.alternative,
+        )
+        return float(answer.clusters), f"{assumptions}: {answer.clusters:.1f} clusters"
+    if kind in ("itt", "tce"):
+        best = cluster_formulas.max_power_with_clusters(
+            effect, axis.clusters, icc, design.pure_control_share, design.shares[j], d.significance_level, d.alternative, sigma=sigma,
+        )
+        return float("nan"), (
+            f"{assumptions}: with {axis.clusters} clusters even infinitely large clusters give power {best:.2f} "
+            f"(ICC {icc:g})" + ("; add clusters instead" if best < d.target_power else "")
+        )
+    return float("nan"), ""
+
+
+def _memory_ok(scenario: Scenario, n: int, axis: SizeAxis = SizeAxis()) -> bool:
+    return axis.adjacency_entries(scenario, n) <= MAX_ADJACENCY_ENTRIES
 
 
 @dataclass
@@ -379,11 +546,18 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
     pi = sizes.pi
     G = scenario.simulation.graphs
     coarse = max(8, G // 4)
-    smallest = max(8, math.ceil(4 / min(pi, 1 - pi)))
-    start = min(max(scenario.population.units[0], smallest), limit)
-    keys = planned_keys(scenario, start)
+    axis = sizes.axis
+    noun = axis.noun
+    smallest = axis.smallest(scenario, pi)
+    first = {
+        "units": lambda: scenario.population.units[0],
+        "clusters": lambda: scenario.population.clusters[0],
+        "cluster_size": lambda: int(round(scenario.population.cluster_sizes.nominal)),
+    }[axis.name]()
+    start = min(max(first, smallest), limit)
+    keys = planned_keys(scenario, axis.point(scenario, start, pi).units)
     states = {k: _KeyState(k) for k in keys}
-    uppers = {k: _upper_size(scenario, k, start, limit) for k in keys}
+    uppers = {k: _upper_size(scenario, k, start, limit, axis) for k in keys}
 
     def score(n: int, st: _KeyState) -> None:
         s = sizes.summary(n, st.key)
@@ -408,7 +582,7 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
                 open_up.append(st)
         for st in open_up:
             trend = _trend_points(sizes, st.key)[-3:]
-            st.reason = _plateau_reason(scenario, st.key, trend, uppers[st.key])
+            st.reason = _plateau_reason(scenario, st.key, trend, uppers[st.key], noun)
             if st.reason:
                 st.done = True
         open_up = [st for st in open_up if not st.done]
@@ -428,7 +602,7 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
                 score(up, st)
             if st.above is None:
                 s = sizes.summary(max(up, n), st.key)
-                st.reason = _limit_reason(scenario, st.key, max(up, n), limit, s)
+                st.reason = _limit_reason(scenario, st.key, max(up, n), limit, s, noun)
                 st.status = "not reachable" if up >= limit else "beyond simulation limit"
                 st.done = True
         open_up = [st for st in open_up if not st.done and st.above is None]
@@ -443,10 +617,10 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
         if not low:
             break
         nxt = max(n // 2, smallest)
-        if nxt == n or scenario.density.target_mean_degree(nxt) >= nxt - 1:
+        if nxt == n or not axis.allowed(scenario, nxt):
             for st in low:
                 st.reason = (
-                    f"the target power is reached already at {n} units, the smallest size searched "
+                    f"the target power is reached already at {n} {noun}, the smallest size searched "
                     "(and the smallest the density rule and design allow)"
                 )
                 st.status = "reached at the smallest size"
@@ -468,7 +642,7 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
         flags = []
         last = sizes.summary(st.above, key) if reached else None
         if last is not None and last.failed:
-            flags.append(f"{last.failed} of {last.failed + last.replicates} replicates at {st.above} units had no estimate")
+            flags.append(f"{last.failed} of {last.failed + last.replicates} replicates at {st.above} {noun} had no estimate")
         records.append(
             SizeRecord(
                 estimand=key[0], estimator=key[1], variance_estimator=key[2], treatment_probability=pi,
@@ -476,40 +650,41 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
                 required_units=st.above if reached else None,
                 units_low=float("nan"), units_high=float("nan"), verified_units=None,
                 verified_power=float("nan"), verified_power_mc_se=float("nan"), relative_precision=float("nan"),
-                reference_distribution=reference_distribution(scenario.design.reference_distribution, key[0], key[1], points[-1].units if points else start, scenario.n_covariates).name,
+                reference_distribution=test_reference(scenario, sizes.point(points[-1].units if points else start), key).name,
                 sd_slope=_sd_slope(_trend_points(sizes, key)), reason=st.reason, points=points, flags=tuple(flags),
             )
         )
     return records
 
 
-def _upper_size(scenario: Scenario, key: tuple[str, str, str], start: int, limit: int) -> int:
+def _upper_size(scenario: Scenario, key: tuple[str, str, str], start: int, limit: int, axis: SizeAxis = SizeAxis()) -> int:
     """Largest size at most ``limit`` at which the test exists and its network fits in memory."""
     upper = limit
-    if key[0] == "direct" and key[2] == "two_hop":
+    if key[0] == "direct" and key[2] == "two_hop" and axis.name == "units":
         upper = min(upper, TWO_HOP_MAX_UNITS)
-    if not _memory_ok(scenario, upper):
+    if not _memory_ok(scenario, upper, axis):
         lo, hi = start, upper  # n * mean degree grows with n: bisect for the largest size that fits
         while hi - lo > 1:
             mid = (lo + hi) // 2
-            lo, hi = (mid, hi) if _memory_ok(scenario, mid) else (lo, mid)
+            lo, hi = (mid, hi) if _memory_ok(scenario, mid, axis) else (lo, mid)
         upper = lo
     return max(upper, start)
 
 
-def _limit_reason(scenario: Scenario, key: tuple[str, str, str], n: int, limit: int, s: _Summary | None) -> str:
+def _limit_reason(scenario: Scenario, key: tuple[str, str, str], n: int, limit: int, s: _Summary | None, noun: str = "units") -> str:
     seen = f"simulated power {s.power:.3f} ± {s.power_se:.3f} there" if s is not None else "no estimate there"
     if n >= limit:
-        return f"not reachable up to {limit:,} units (population.max_units or --max-units): {seen}"
+        where = "population.max_clusters or --max-clusters" if noun == "clusters" else "population.max_units or --max-units"
+        return f"not reachable up to {limit:,} {noun} ({where}): {seen}"
     if key[2] == "two_hop" and n >= TWO_HOP_MAX_UNITS:
         return f"not reached by {n:,} units, the largest size at which the two_hop variance is available ({seen}); two_hop_psd works at any size"
     return (
-        f"not reached by {n:,} units ({seen}); larger networks were not simulated: their adjacency would hold more "
+        f"not reached by {n:,} {noun} ({seen}); larger networks were not simulated: their adjacency would hold more "
         f"than {MAX_ADJACENCY_ENTRIES:,} entries"
     )
 
 
-def _plateau_reason(scenario: Scenario, key: tuple[str, str, str], trend: Sequence[tuple[int, _Summary]], upper: int) -> str:
+def _plateau_reason(scenario: Scenario, key: tuple[str, str, str], trend: Sequence[tuple[int, _Summary]], upper: int, noun: str = "units") -> str:
     """Why the target cannot be reached by ``upper`` units, judged from the last three sizes (empty: keep searching).
 
     The effect-to-SD ratio is fitted as a power of n; the test is ruled out
@@ -539,7 +714,7 @@ def _plateau_reason(scenario: Scenario, key: tuple[str, str, str], trend: Sequen
     growth_rule = scenario.density.growth_exponent
     if slope > -0.1:
         why = (
-            f"the estimator's SD stops shrinking as n grows (log-log slope {slope:+.2f} from {n0:,} to {n2:,} units"
+            f"the estimator's SD stops shrinking as n grows (log-log slope {slope:+.2f} from {n0:,} to {n2:,} {noun}"
             + (f"; the density rule has growth exponent {growth_rule:g}" if growth_rule > 0 else "")
             + ")"
         )
@@ -548,8 +723,8 @@ def _plateau_reason(scenario: Scenario, key: tuple[str, str, str], trend: Sequen
     else:
         why = "the mean estimate shrinks nearly as fast as its SD"
     return (
-        f"not reachable within {upper:,} units: {why}; effect/SD grows like n^{growth:.2f}, "
-        f"which extrapolates to power {predicted:.2f} at {upper:,} units"
+        f"not reachable within {upper:,} {noun}: {why}; effect/SD grows like n^{growth:.2f}, "
+        f"which extrapolates to power {predicted:.2f} at {upper:,} {noun}"
     )
 
 
@@ -562,12 +737,12 @@ def _solve_trend(scenario: Scenario, sizes: _Sizes, key: tuple[str, str, str], l
     target = scenario.design.target_power
     points = _trend_points(sizes, key)
     try:
-        if not _predicted_power(scenario, key, low, points) < target <= _predicted_power(scenario, key, high, points):
+        if not _predicted_power(sizes, key, low, points) < target <= _predicted_power(sizes, key, high, points):
             return None
         lo, hi = math.log(low), math.log(high)
         for _ in range(50):
             mid = 0.5 * (lo + hi)
-            if _predicted_power(scenario, key, math.exp(mid), points) < target:
+            if _predicted_power(sizes, key, math.exp(mid), points) < target:
                 lo = mid
             else:
                 hi = mid
@@ -664,17 +839,17 @@ def _refine(scenario: Scenario, sizes: _Sizes, st: _KeyState, precision: float, 
         why = f"max_graphs = {cap}" if sizes.graphs(n_v, key) >= cap else f"the {_MAX_REFINE_STEPS} refinement steps allowed"
         flags.append(f"precision ±{h:.1%} short of the requested ±{precision:.1%} ({why})")
     if s.failed:
-        flags.append(f"{s.failed} of {s.failed + s.replicates} replicates at {n_v:,} units had no estimate (an empty arm, or the estimator undefined on the graph); power counts the others")
+        flags.append(f"{s.failed} of {s.failed + s.replicates} replicates at {n_v:,} {sizes.axis.noun} had no estimate (an empty arm, or the estimator undefined on the graph); power counts the others")
     if n_hat > limit:
-        flags.append(f"the estimate lies beyond the search limit of {limit:,} units")
+        flags.append(f"the estimate lies beyond the search limit of {limit:,} {sizes.axis.noun}")
     points = sizes.points(key)
-    reference = reference_distribution(scenario.design.reference_distribution, key[0], key[1], n_v, scenario.n_covariates)
+    reference = test_reference(scenario, sizes.point(n_v), key)
     # The test's size at the verified n: an over-rejecting test reaches its power "too early".
     size, size_se = sizes.null_size(n_v, key, G)
     alpha = scenario.design.significance_level
     if math.isfinite(size) and (size - 2 * size_se > 1.4 * alpha or size + 2 * size_se < 0.6 * alpha):
         flags.append(
-            f"the test's size at {n_v:,} units is {size:.3f} (MC se {size_se:.3f}), outside "
+            f"the test's size at {n_v:,} {sizes.axis.noun} is {size:.3f} (MC se {size_se:.3f}), outside "
             f"[{0.6 * alpha:.3f}, {1.4 * alpha:.3f}]: its power, and so this n, are not trustworthy"
         )
     return SizeRecord(

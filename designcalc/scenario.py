@@ -19,6 +19,7 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
+from designcalc.clusters import MAX_CLUSTERS, ClusterSizes
 from designcalc.covariates import (
     Covariate,
     CovariateError,
@@ -30,6 +31,7 @@ from designcalc.edge_models import KERNEL_FAMILIES, BlockModel, EdgeModel, Kerne
 from designcalc.errors import DesignCalcError, ScenarioError
 from designcalc.measurement import CAP_RULES, SYMMETRISE_RULES, MeasurementModel
 from designcalc.outcomes import SPILLOVER_SHAPES, OutcomeModel
+from designcalc.saturation import CONTRAST_KINDS, DEFAULT_CONTRASTS, WITHIN_RULES, SaturationDesign, check_clusters, contrast_names
 from designcalc.surveyed import TYPE_RULES, SurveyedNetwork, load_surveyed_network
 
 __all__ = [
@@ -67,29 +69,54 @@ _MAX_REPLICATES = 10_000_000
 
 @dataclass(frozen=True)
 class Population:
-    """One network of each planned size (clustered populations will sit beside it).
+    """One network of each planned size, or a clustered population (``designcalc.clusters``).
 
     ``max_units`` bounds the search of ``designcalc size``; 0 means the
     default, 16 times the largest planned size (at most the hard limit).
+    A clustered population plans each number of clusters in ``clusters``,
+    sized by ``cluster_sizes``; its ``units`` are the nominal totals
+    (clusters times the mean cluster size), one per entry of ``clusters``.
     """
 
     units: tuple[int, ...]
     max_units: int = 0
+    clusters: tuple[int, ...] = ()
+    cluster_sizes: ClusterSizes | None = None
+    max_clusters: int = 0
+
+    @property
+    def clustered(self) -> bool:
+        return bool(self.clusters)
 
     @property
     def search_limit(self) -> int:
         return self.max_units or min(16 * max(self.units), _MAX_UNITS)
 
+    @property
+    def cluster_search_limit(self) -> int:
+        return self.max_clusters or min(16 * max(self.clusters), MAX_CLUSTERS)
+
+    def nominal_units(self, clusters: int, cluster_size: int = 0) -> int:
+        """The nominal total of ``clusters`` clusters (of ``cluster_size`` each, when a solver fixes it)."""
+        assert self.cluster_sizes is not None
+        return int(round(clusters * (cluster_size or self.cluster_sizes.nominal)))
+
 
 @dataclass(frozen=True)
 class Design:
-    """Bernoulli assignment at one or more treatment probabilities, and the test settings."""
+    """Bernoulli assignment at one or more treatment probabilities, and the test settings.
+
+    ``saturation`` is set for a two-stage (randomized saturation or
+    cluster-randomized) design on a clustered population; its one treatment
+    probability is then the design's expected share treated.
+    """
 
     treatment_probabilities: tuple[float, ...]
     significance_level: float = 0.05
     target_power: float = 0.8
     alternative: str = "two-sided"
     reference_distribution: str = "auto"
+    saturation: SaturationDesign | None = None
 
 
 @dataclass(frozen=True)
@@ -101,6 +128,7 @@ class EstimatorPlan:
     spillover: tuple[str, ...] = ("pc_balancing_corrected", "centred_ht")
     centre: float = 0.0
     eigenvectors: int | None = None  # None: the eigenvalue rule of METHODS.md §3.3
+    contrasts: tuple[str, ...] = ()  # a clustered design's contrast kinds (designcalc.saturation)
     # Not a scenario key: a run may restrict itself to some planned tests
     # (engine.restrict_tests; the report's key answers).  None: every one.
     only_tests: frozenset[tuple[str, str, str]] | None = None
@@ -353,7 +381,8 @@ _MEASUREMENT_KEYS = ("contact_cap", "cap_rule", "symmetrise", "tie_recall", "non
 _EXECUTION_KEYS = ("workers", "cluster", "store")
 _COVARIATE_KEYS = ("name", "r_squared", "through_type")
 _SCENARIO_KEYS = ("name", "description")
-_POPULATION_KEYS = ("units", "max_units")
+_POPULATION_KEYS = ("units", "max_units", "clusters", "cluster_size", "cluster_sizes", "max_clusters")
+_CLUSTER_SIZE_KEYS = ("mean", "sd", "low", "high")
 _NETWORK_KEYS = (
     "model", "block_shares", "block_affinity", "kernel", "degree_ratio", "length_scale", "floor", "amplitudes", "expression",
     "density", "edges", "types",
@@ -362,10 +391,14 @@ _BLOCK_AND_KERNEL_KEYS = ("block_shares", "block_affinity", "kernel", "degree_ra
 _DENSITY_KEYS = ("mean_degree", "reference_units", "growth_exponent")
 _OUTCOME_KEYS = (
     "kind", "baseline", "type_effect", "block_effects", "noise_sd", "direct_effect", "spillover_effect",
-    "spillover_shape", "saturation_rate", "threshold", "interaction", "link", "exposure",
+    "spillover_shape", "saturation_rate", "threshold", "interaction", "link", "exposure", "cluster_icc",
 )
-_DESIGN_KEYS = ("treatment_probability", "significance_level", "target_power", "alternative", "reference_distribution")
-_ESTIMATOR_KEYS = ("direct", "direct_variance", "spillover", "centre", "eigenvectors")
+_DESIGN_KEYS = (
+    "assignment", "treatment_probability", "significance_level", "target_power", "alternative", "reference_distribution",
+    "treated_cluster_share", "pure_control_share", "saturations", "saturation_shares", "within",
+)
+ASSIGNMENTS = ("bernoulli", "cluster", "saturation")
+_ESTIMATOR_KEYS = ("direct", "direct_variance", "spillover", "centre", "eigenvectors", "contrasts")
 _SIMULATION_KEYS = ("graphs", "assignments_per_graph", "seed", "relative_precision", "max_graphs")
 
 
@@ -374,6 +407,8 @@ def _read_population(top: _Table, network: EdgeModel) -> Population:
         return _surveyed_population(top, network)
     t = top.table("population", _POPULATION_KEYS)
     assert t is not None
+    if t.has("clusters") or t.has("cluster_sizes") or t.has("cluster_size"):
+        return _clustered_population(t)
     units = t.number_list("units", low=4, high=_MAX_UNITS, integer=True)
     if len(set(units)) != len(units):
         raise t.error("units", "lists the same size twice", received=list(units))
@@ -382,6 +417,70 @@ def _read_population(top: _Table, network: EdgeModel) -> Population:
         raise t.error("max_units", f"must be at least the largest planned size ({max(units)})", received=max_units)
     t.finish()
     return Population(units=tuple(sorted(units)), max_units=max_units)
+
+
+def _clustered_population(t: _Table) -> Population:
+    """``clusters`` with ``cluster_size`` (a number or a {mean, sd, low, high} table), or ``cluster_sizes`` (each stated)."""
+    for name in ("units", "max_units"):
+        if t.has(name):
+            raise t.error(name, "has no use in a clustered population: state clusters and cluster_size", hint="remove it; max_clusters bounds the size search")
+    if t.has("cluster_sizes"):
+        if t.has("cluster_size"):
+            raise t.error("cluster_size", "conflicts with cluster_sizes (each cluster stated): keep one", hint="remove one of them")
+        stated = t.number_list("cluster_sizes", low=4, high=_MAX_UNITS, integer=True, allow_scalar=False, min_length=2)
+        if t.has("clusters") and tuple(t.number_list("clusters", low=2, high=MAX_CLUSTERS, integer=True)) != (len(stated),):
+            raise t.error("clusters", f"must be the number of sizes listed in cluster_sizes ({len(stated)}), or left out", received=t.raw("clusters"))
+        if t.has("max_clusters"):
+            raise t.error("max_clusters", "has no use when every cluster's size is stated (their number is fixed)", hint="remove it, or give cluster_size instead")
+        sizes = ClusterSizes("list", sizes=tuple(stated))
+        clusters: tuple[int, ...] = (len(stated),)
+        max_clusters = len(stated)
+    else:
+        clusters = tuple(sorted(t.number_list("clusters", low=2, high=MAX_CLUSTERS, integer=True)))
+        if len(set(clusters)) != len(clusters):
+            raise t.error("clusters", "lists the same number twice", received=list(clusters))
+        sizes = _cluster_size_rule(t)
+        max_clusters = t.number("max_clusters", 0, low=0, high=MAX_CLUSTERS, integer=True)
+        if max_clusters and max_clusters < max(clusters):
+            raise t.error("max_clusters", f"must be at least the largest planned number of clusters ({max(clusters)})", received=max_clusters)
+    if any(c * sizes.largest > _MAX_UNITS for c in clusters):
+        raise t.error("clusters", f"clusters times the largest cluster size must be at most {_MAX_UNITS:,} units", received=list(clusters))
+    t.finish()
+    units = tuple(int(round(c * sizes.nominal)) for c in clusters)
+    return Population(units=units, clusters=clusters, cluster_sizes=sizes, max_clusters=max_clusters)
+
+
+def _cluster_size_rule(t: _Table) -> ClusterSizes:
+    raw = t.raw("cluster_size")
+    if not isinstance(raw, dict):
+        size = t.check_number("cluster_size", raw, low=4, high=_MAX_UNITS, integer=True)
+        return ClusterSizes("fixed", size=size)
+    d = _Table(raw, t.key("cluster_size"), t.file, _CLUSTER_SIZE_KEYS)
+    if d.has("mean"):
+        mean = d.number("mean", low=4, high=_MAX_UNITS)
+        sd = d.number("sd", low=0, high=_MAX_UNITS)
+        low = d.number("low", 4, low=4, high=_MAX_UNITS, integer=True)
+        high = d.number("high", int(math.ceil(mean + 4 * sd)), low=4, high=_MAX_UNITS, integer=True)
+        kind = "normal"
+    else:
+        mean = sd = 0.0
+        low = d.number("low", low=4, high=_MAX_UNITS, integer=True)
+        high = d.number("high", low=4, high=_MAX_UNITS, integer=True)
+        kind = "uniform"
+    if high < low:
+        raise d.error("high", f"must be at least low ({low})", received=high)
+    if kind == "normal" and not low <= mean <= high:
+        raise d.error("mean", f"must lie within [low, high] = [{low}, {high}]", received=mean)
+    if kind == "normal" and sd > 0:
+        # Sizes are redrawn until they fall in [low, high]: that must happen often enough to be drawn at all.
+        def phi(z: float) -> float:
+            return 0.5 * (1.0 + math.erf(z / math.sqrt(2.0)))
+
+        inside = phi((high + 0.5 - mean) / sd) - phi((low - 0.5 - mean) / sd)
+        if inside < 1e-3:
+            raise d.error("sd", f"is so large that a size in [low, high] = [{low}, {high}] is almost never drawn (chance {inside:.2g})", received=sd, hint="use a smaller sd, or { low, high } for equally likely sizes")
+    d.finish()
+    return ClusterSizes(kind, mean=mean, sd=sd, low=low, high=high)
 
 
 def _surveyed_population(top: _Table, network: SurveyedNetwork) -> Population:
@@ -397,6 +496,9 @@ def _surveyed_population(top: _Table, network: SurveyedNetwork) -> Population:
             )
         if t.has("max_units"):
             raise t.error("max_units", "has no use with a surveyed network (its size is fixed)", hint="remove it")
+        for name in ("clusters", "cluster_size", "cluster_sizes", "max_clusters"):
+            if t.has(name):
+                raise t.error(name, "has no use with a surveyed network: its size and villages are fixed by the edge lists", hint="remove it")
         t.finish()
     return Population(units=(n,), max_units=n)
 
@@ -513,6 +615,8 @@ def _read_outcome(top: _Table, network: EdgeModel) -> OutcomeModel:
     values: dict[str, Any] = {"kind": kind, "spillover_shape": shape}
     if kind == "binary":
         values["link"] = t.choice("link", ("identity", "logistic"), "identity")
+        if t.has("cluster_icc"):
+            raise t.error("cluster_icc", "is modelled for continuous outcomes only (a normal cluster effect)", hint="remove it, or set kind = \"continuous\"")
         if t.has("noise_sd"):
             raise t.error("noise_sd", "applies to continuous outcomes only; binary outcomes draw their own noise", hint="remove it, or set kind = \"continuous\"")
         if values["link"] == "identity":
@@ -524,6 +628,7 @@ def _read_outcome(top: _Table, network: EdgeModel) -> OutcomeModel:
             raise t.error("link", "applies to binary outcomes only", hint="remove it, or set kind = \"binary\"")
         values["baseline"] = t.number("baseline", 0.0, low=-1e12, high=1e12)
         values["noise_sd"] = t.number("noise_sd", low=0, high=1e12)
+        values["cluster_icc"] = t.number("cluster_icc", 0.0, low=0, high=1, high_open=True)
     big = 1e12
     values["direct_effect"] = t.number("direct_effect", low=-big, high=big)
     values["spillover_effect"] = t.number("spillover_effect", low=-big, high=big)
@@ -551,18 +656,76 @@ def _read_outcome(top: _Table, network: EdgeModel) -> OutcomeModel:
     return _wrap_model_error(t, "kind", lambda: OutcomeModel(**values))
 
 
-def _read_design(top: _Table) -> Design:
+_SATURATION_KEYS = ("treated_cluster_share", "pure_control_share", "saturations", "saturation_shares", "within")
+
+
+def _read_design(top: _Table, population: Population) -> Design:
     t = top.table("design", _DESIGN_KEYS)
     assert t is not None
-    probs = t.number_list("treatment_probability", low=0, high=1, low_open=True, high_open=True)
-    if len(set(probs)) != len(probs):
-        raise t.error("treatment_probability", "lists the same probability twice", received=list(probs))
+    assignment = t.choice("assignment", ASSIGNMENTS, "bernoulli")
+    if assignment != "bernoulli" and not population.clustered:
+        raise t.error(
+            "assignment", f'"{assignment}" assigns whole clusters, but the population is one network',
+            hint="state [population] clusters and cluster_size, or use assignment = \"bernoulli\"",
+        )
+    saturation = None
+    if assignment == "bernoulli":
+        for name in _SATURATION_KEYS:
+            if t.has(name):
+                raise t.error(name, 'applies to assignment = "cluster" or "saturation" only', hint="remove it, or choose a clustered assignment")
+        probs = t.number_list("treatment_probability", low=0, high=1, low_open=True, high_open=True)
+        if len(set(probs)) != len(probs):
+            raise t.error("treatment_probability", "lists the same probability twice", received=list(probs))
+    else:
+        if t.has("treatment_probability"):
+            raise t.error(
+                "treatment_probability", f'has no use with assignment = "{assignment}": the design\'s arms set who is treated',
+                hint="use treated_cluster_share (cluster) or pure_control_share and saturations (saturation)",
+            )
+        saturation = _read_saturation(t, assignment)
+        probs = (saturation.mean_saturation,)
     alpha = t.number("significance_level", 0.05, low=0, high=0.5, low_open=True, high_open=True)
     power = t.number("target_power", 0.8, low=0, high=1, low_open=True, high_open=True)
     alternative = t.choice("alternative", ALTERNATIVES, "two-sided")
     reference = t.choice("reference_distribution", REFERENCE_DISTRIBUTIONS, "auto")
     t.finish()
-    return Design(tuple(sorted(probs)), alpha, power, alternative, reference)
+    if saturation is not None:
+        for c in population.clusters:
+            try:
+                check_clusters(saturation, c)
+            except DesignCalcError as exc:
+                raise ScenarioError(str(exc), file=t.file, key="population.clusters", received=c, hint="plan more clusters, or give the small arms larger shares") from None
+    return Design(tuple(sorted(probs)), alpha, power, alternative, reference, saturation)
+
+
+def _read_saturation(t: _Table, assignment: str) -> SaturationDesign:
+    if assignment == "cluster":
+        for name in ("pure_control_share", "saturations", "saturation_shares", "within"):
+            if t.has(name):
+                raise t.error(name, 'applies to assignment = "saturation" only; a cluster-randomized design treats whole clusters', hint="remove it")
+        share = t.number("treated_cluster_share", 0.5, low=0, high=1, low_open=True, high_open=True)
+        return SaturationDesign(1.0 - share, (1.0,), (share,), "complete", ("itt",))
+    if t.has("treated_cluster_share"):
+        raise t.error("treated_cluster_share", 'applies to assignment = "cluster" only', hint="use pure_control_share and saturation_shares")
+    psi = t.number("pure_control_share", low=0, high=1, low_open=True, high_open=True)
+    saturations = t.number_list("saturations", low=0, high=1, low_open=True)
+    if len(set(saturations)) != len(saturations):
+        raise t.error("saturations", "lists the same saturation twice", received=list(saturations))
+    if t.has("saturation_shares"):
+        shares = t.number_list("saturation_shares", low=0, high=1, low_open=True, high_open=True)
+        if len(shares) != len(saturations):
+            raise t.error("saturation_shares", f"must hold one share per saturation ({len(saturations)})", received=list(shares))
+        if abs(psi + sum(shares) - 1.0) > 1e-6:
+            raise t.error(
+                "saturation_shares", f"with pure_control_share {psi:g} the shares must add up to {1 - psi:g} (every cluster is in one arm)",
+                received=list(shares),
+            )
+        shares = tuple(s * (1.0 - psi) / sum(shares) for s in shares)  # exact sum after rounding in the file
+    else:
+        shares = tuple((1.0 - psi) / len(saturations) for _ in saturations)
+    within = t.choice("within", WITHIN_RULES, "complete")
+    order = sorted(range(len(saturations)), key=lambda j: saturations[j])
+    return SaturationDesign(psi, tuple(saturations[j] for j in order), tuple(shares[j] for j in order), within)
 
 
 def _read_covariates(top: _Table, outcome: OutcomeModel, network: EdgeModel) -> CovariateLoadings | None:
@@ -594,8 +757,10 @@ def _read_covariates(top: _Table, outcome: OutcomeModel, network: EdgeModel) -> 
         raise ScenarioError(str(exc), file=top.file, key=key, hint="lower r_squared, or change through_type") from None
 
 
-def _read_estimators(top: _Table, outcome: OutcomeModel, has_covariates: bool) -> EstimatorPlan:
+def _read_estimators(top: _Table, outcome: OutcomeModel, has_covariates: bool, design: Design) -> EstimatorPlan:
     t = top.table("estimators", _ESTIMATOR_KEYS, required=False)
+    if design.saturation is not None:
+        return _read_contrasts(t, design.saturation)
     # With covariates the default plan shows adjusted and unadjusted estimators side by side.
     default_direct = ("hajek", "lin") if has_covariates else ("hajek",)
     default_spillover = ("pc_balancing_corrected", "centred_ht")
@@ -603,6 +768,8 @@ def _read_estimators(top: _Table, outcome: OutcomeModel, has_covariates: bool) -
         default_spillover = ("pc_balancing_corrected", "pc_balancing_corrected_adjusted", "centred_ht", "centred_ht_adjusted")
     if t is None:
         return EstimatorPlan(direct=default_direct, spillover=default_spillover, centre=outcome.baseline)
+    if t.has("contrasts"):
+        raise t.error("contrasts", 'are the tests of a clustered design (assignment = "cluster" or "saturation")', hint="remove it, or choose a clustered assignment")
     direct = t.choice_list("direct", DIRECT_ESTIMATORS, default_direct)
     variance = t.choice_list("direct_variance", DIRECT_VARIANCES, ("neyman",))
     spillover = t.choice_list("spillover", SPILLOVER_ESTIMATORS, default_spillover)
@@ -623,6 +790,29 @@ def _read_estimators(top: _Table, outcome: OutcomeModel, has_covariates: bool) -
         k = t.check_number("eigenvectors", eig, low=0, high=50, integer=True)
     t.finish()
     return EstimatorPlan(direct, variance, spillover, centre, k)
+
+
+def _read_contrasts(t: _Table | None, design: SaturationDesign) -> EstimatorPlan:
+    """A clustered design's tests are its contrasts (``designcalc.saturation``); the network estimators do not apply."""
+    if t is None:
+        return EstimatorPlan(direct=(), direct_variance=(), spillover=(), contrasts=design.contrasts)
+    for name in ("direct", "direct_variance", "spillover", "centre", "eigenvectors"):
+        if t.has(name):
+            raise t.error(
+                name, "applies to Bernoulli assignment; a clustered design is analysed by its contrasts",
+                allowed="contrasts = a list drawn from " + ", ".join(f'"{c}"' for c in CONTRAST_KINDS), hint="remove it",
+            )
+    if design.is_cluster_randomized:
+        contrasts = t.choice_list("contrasts", ("itt",), ("itt",))
+    else:
+        contrasts = t.choice_list("contrasts", CONTRAST_KINDS, DEFAULT_CONTRASTS)
+    if not contrast_names(replace(design, contrasts=contrasts)):
+        raise t.error(
+            "contrasts", "leave nothing to test with this design (pooled needs two saturations, a slope two below 1)",
+            received=list(contrasts), hint='add "itt" or "snt"',
+        )
+    t.finish()
+    return EstimatorPlan(direct=(), direct_variance=(), spillover=(), contrasts=contrasts)
 
 
 def _read_simulation(top: _Table) -> SimulationSettings:
@@ -719,14 +909,37 @@ def parse_scenario(text: str, *, source: str = "<scenario>", folder: str | Path 
     network, density = _read_network(top, Path(folder) if folder is not None else Path.cwd())
     population = _read_population(top, network)
     outcome = _read_outcome(top, network)
-    design = _read_design(top)
+    design = _read_design(top, population)
     covariates = _read_covariates(top, outcome, network)
-    estimators = _read_estimators(top, outcome, covariates is not None)
+    estimators = _read_estimators(top, outcome, covariates is not None, design)
+    if design.saturation is not None:
+        design = replace(design, saturation=replace(design.saturation, contrasts=estimators.contrasts or design.saturation.contrasts))
     simulation = _read_simulation(top)
     execution = _read_execution(top)
     measurement = _read_measurement(top)
     top.finish()
-    for n in population.units:
+    if design.saturation is not None:
+        # A two-stage design's contrasts read neither covariates nor the network: accepting them would mislead.
+        if covariates is not None:
+            raise ScenarioError(
+                "are not used by a clustered design's contrasts (no covariate adjustment for them yet)",
+                file=source, key="covariates", hint="remove the [[covariates]] sections, or use assignment = \"bernoulli\"",
+            )
+        if measurement is not None:
+            raise ScenarioError(
+                "has no effect on a clustered design: its contrasts compare arms and never read the network",
+                file=source, key="measurement", hint="remove the [measurement] table, or use assignment = \"bernoulli\" to see what measurement does to the network estimators",
+            )
+    if population.clustered:
+        m = population.cluster_sizes.smallest
+        if density.target_mean_degree(m) >= m - 1:
+            raise ScenarioError(
+                f"in a cluster of {m} units the density rule asks for mean degree {density.target_mean_degree(m):.4g}, but a unit can link to at most {m - 1} others",
+                file=source, key="network.density.mean_degree", hint="each cluster's density follows the rule at its own size: lower mean_degree, or plan larger clusters",
+            )
+    elif outcome.cluster_icc > 0:
+        raise ScenarioError("cluster_icc needs a clustered population", file=source, key="outcome.cluster_icc", hint="state [population] clusters and cluster_size, or remove cluster_icc")
+    for n in () if population.clustered else population.units:
         if density.target_mean_degree(n) >= n - 1:
             raise ScenarioError(
                 f"at {n} units the density rule asks for mean degree {density.target_mean_degree(n):.4g}, but a unit can link to at most {n - 1} others",

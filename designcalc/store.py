@@ -66,7 +66,7 @@ __all__ = [
 ]
 
 #: Version of the tables and the payload format; a store written by a newer version is refused, not misread.
-SCHEMA_VERSION = 1
+SCHEMA_VERSION = 2
 _BUSY_TIMEOUT_MS = 30_000  # another designcalc writing the same store waits, it does not fail
 
 _SCHEMA = """
@@ -159,6 +159,9 @@ def numbers_fingerprint(scenario: Scenario, runs: Sequence[Run] | None = None, *
     if scenario.measurement is not None:
         # Added only when present, so the fingerprints (and stored graphs) of scenarios without one stay as they were.
         content["measurement"] = _canonical(scenario.measurement)
+    if scenario.population.clustered:
+        # How clusters are sized and (for a two-stage design) allocated: numbers change with either.
+        content["clusters"] = _canonical({"sizes": scenario.population.cluster_sizes, "design": scenario.design.saturation})
     text = json.dumps(content, sort_keys=True, separators=(",", ":"), allow_nan=True)
     return hashlib.sha256(text.encode("utf-8")).hexdigest()
 
@@ -176,7 +179,7 @@ def encode_draws(draws: GraphDraws) -> bytes:
             arrays[f"{len(runs)}.{i}.estimate"] = run.estimates[key]
             arrays[f"{len(runs)}.{i}.se"] = run.standard_errors[key]
         runs.append({"label": label, "estimands": dataclasses.asdict(run.estimands), "keys": [list(k) for k in keys]})
-    for name in ("degrees", "theta"):
+    for name in ("degrees", "theta", "cluster_sizes"):
         value = getattr(draws, name)
         if value is not None:
             arrays[name] = value
@@ -216,6 +219,7 @@ def decode_draws(payload: bytes) -> GraphDraws:
                 control_variance=header["control_variance"],
                 degrees=archive["degrees"] if "degrees" in archive.files else None,
                 theta=archive["theta"] if "theta" in archive.files else None,
+                cluster_sizes=archive["cluster_sizes"] if "cluster_sizes" in archive.files else None,
                 failures=dict(header["failures"]),
             )
     except (OSError, KeyError, TypeError, ValueError, json.JSONDecodeError) as exc:
@@ -226,9 +230,21 @@ def _library_versions() -> str:
     return json.dumps({"numpy": np.__version__, "scipy": scipy.__version__}, sort_keys=True)
 
 
-def _probability_key(pi: float) -> str:
-    # The exact float (hex): the estimators use pi itself, so two probabilities that round alike are not one point.
-    return float(pi).hex()
+def _point_key(point: DesignPoint) -> str:
+    """The ``probability`` column: the exact float (hex), and a clustered point's clusters and imposed size.
+
+    The estimators use pi itself, so two probabilities that round alike are
+    not one point; two clustered points of one nominal total are not either.
+    """
+    key = float(point.treatment_probability).hex()
+    if point.clusters:
+        key += f"|clusters={point.clusters}|size={point.cluster_size}"
+    return key
+
+
+def _split_point_key(key: str) -> tuple[float, str]:
+    probability, _, rest = key.partition("|")
+    return float.fromhex(probability), rest.replace("|", " ")
 
 
 def _now() -> str:
@@ -355,7 +371,7 @@ class ResultStore:
         try:
             rows = self._db.execute(
                 "SELECT graph_index FROM blocks WHERE fingerprint = ? AND units = ? AND probability = ?",
-                (fingerprint, point.units, _probability_key(point.treatment_probability)),
+                (fingerprint, point.units, _point_key(point)),
             ).fetchall()
         except sqlite3.Error as exc:  # a damaged file: compute everything, store nothing more
             self.write_error = f"results store {self.path}: cannot be read ({exc}); the run goes on without it"
@@ -367,7 +383,7 @@ class ResultStore:
         try:
             row = self._db.execute(
                 "SELECT payload FROM blocks WHERE fingerprint = ? AND units = ? AND probability = ? AND graph_index = ?",
-                (fingerprint, point.units, _probability_key(point.treatment_probability), graph_index),
+                (fingerprint, point.units, _point_key(point), graph_index),
             ).fetchone()
         except sqlite3.Error:  # an unreadable page: compute the graph again
             return None
@@ -410,12 +426,12 @@ class ResultStore:
             )
             self._db.execute(
                 "INSERT OR REPLACE INTO blocks VALUES (?, ?, ?, ?, ?, ?, ?)",
-                (fingerprint, point.units, _probability_key(point.treatment_probability), graph_index, payload, now, now),
+                (fingerprint, point.units, _point_key(point), graph_index, payload, now, now),
             )
 
     def touch(self, fingerprint: str, blocks: Iterable[tuple[DesignPoint, int]]) -> None:
         """Mark reused blocks as used now (``prune --unused-days`` keeps what is still in use)."""
-        rows = [(_now(), fingerprint, p.units, _probability_key(p.treatment_probability), g) for p, g in blocks]
+        rows = [(_now(), fingerprint, p.units, _point_key(p), g) for p, g in blocks]
         if not rows or self.write_error is not None:
             return
         try:
@@ -452,7 +468,7 @@ class ResultStore:
         writer = csv.writer(out, lineterminator="\n")
         writer.writerow((
             "fingerprint", "scenario", "units", "treatment_probability", "graph", "run", "estimand", "estimator",
-            "variance_estimator", "assignment", "true_estimand", "estimate", "standard_error",
+            "variance_estimator", "assignment", "true_estimand", "estimate", "standard_error", "clusters",
         ))
         count = 0
         for fingerprint in fingerprints:
@@ -465,13 +481,14 @@ class ResultStore:
                     draws = decode_draws(payload)
                 except ValueError:
                     continue  # a damaged block is not exported; the next run recomputes it
+                probability, clusters = _split_point_key(pkey)
                 for label, run in draws.runs.items():
                     for key, estimates in run.estimates.items():
-                        truth = run.estimands.value(key[0])
+                        truth = run.estimands.truth(key)
                         for b, (estimate, se) in enumerate(zip(estimates, run.standard_errors[key])):
                             writer.writerow((
-                                fingerprint, name_row[0], units, repr(float.fromhex(pkey)), graph, label, *key, b,
-                                repr(truth), repr(float(estimate)), repr(float(se)),
+                                fingerprint, name_row[0], units, repr(probability), graph, label, *key, b,
+                                repr(truth), repr(float(estimate)), repr(float(se)), clusters,
                             ))
                             count += 1
         return count

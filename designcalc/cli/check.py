@@ -33,8 +33,12 @@ def register(app: typer.Typer) -> None:
         if result.covariate_note:
             console.print(f"covariates: {result.covariate_note}", soft_wrap=True)
         console.print(f"regime: [bold]{result.regime}[/]. {result.regime_explanation}", soft_wrap=True)
-        table = Table(title="What the density rule implies", title_justify="left")
-        for col in ("units", "rho_n", "mean degree (target)", "mean degree (expected)", "one draw", "isolates", "clipped", "leading eigenvalues of E[A]"):
+        for note in result.cluster_notes:
+            console.print(note, soft_wrap=True)
+        size_word = "units per cluster" if s.population.clustered else "units"
+        title = "What the density rule implies" + (" in one cluster (smallest, mean, largest size)" if s.population.clustered else "")
+        table = Table(title=title, title_justify="left")
+        for col in (size_word, "rho_n", "mean degree (target)", "mean degree (expected)", "one draw", "isolates", "clipped", "leading eigenvalues of E[A]"):
             table.add_column(col, justify="right")
         for size in result.sizes:
             d = size.density
@@ -45,8 +49,8 @@ def register(app: typer.Typer) -> None:
                 ", ".join(f"{x:.3g}" for x in size.leading_eigenvalues[:4]),
             )
         console.print(table)
-        est = Table(title="Exact estimands on one simulated network", title_justify="left")
-        for col in ("units", "treatment probability", "direct", "spillover", "total", "global (all vs none)"):
+        est = Table(title="Exact estimands on one simulated network" + (" of one cluster's size" if s.population.clustered else ""), title_justify="left")
+        for col in (size_word, "treatment probability", "direct", "spillover", "total", "global (all vs none)"):
             est.add_column(col, justify="right")
         for size in result.sizes:
             for e in size.estimands:
@@ -60,10 +64,13 @@ def register(app: typer.Typer) -> None:
 
 def _network_figure(scenario: Scenario) -> dict[str, object]:
     """One network the simulation would use at the smallest planned size: "does this look like my villages?"."""
-    from designcalc.engine import DesignPoint, example_network
+    from designcalc.engine import DesignPoint, clustered_point, example_network
     from designcalc.figures import network_figure
 
-    point = DesignPoint(scenario.population.units[0], scenario.design.treatment_probabilities[0])
+    if scenario.population.clustered:
+        point = clustered_point(scenario, scenario.population.clusters[0], scenario.design.treatment_probabilities[0])
+    else:
+        point = DesignPoint(scenario.population.units[0], scenario.design.treatment_probabilities[0])
     net, treated = example_network(scenario, point)
     mean_degree = net.adjacency.nnz / max(point.units, 1)
     return {

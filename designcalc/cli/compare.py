@@ -1,10 +1,16 @@
-"""``designcalc compare SCENARIO``: treatment probabilities (and estimators) side by side by SE, MDE and size."""
+"""``designcalc compare SCENARIO``: treatment probabilities (and estimators) side by side by SE, MDE and size.
+
+With ``--design OTHER.toml`` (repeatable) it puts whole designs side by side
+instead: the scenario's and the others', at one total number of units
+(``designcalc.design_compare``).
+"""
 
 from __future__ import annotations
 
 import math
 from collections.abc import Sequence
 from functools import partial
+from pathlib import Path
 from typing import Annotated
 
 import typer
@@ -45,8 +51,9 @@ from designcalc.compare import (
     compare_treatment_probabilities,
     parse_test_spec,
 )
+from designcalc.design_compare import DesignComparison, DesignRow, compare_designs
 from designcalc.errors import DesignCalcError
-from designcalc.scenario import Scenario
+from designcalc.scenario import Scenario, load_scenario
 
 _CSV_FIELDS = (
     "units", "treatment_probability", "estimand", "estimator", "variance_estimator", "standard_error",
@@ -177,6 +184,80 @@ def render_csv(result: CompareResult) -> str:
     return records_csv(result.rows, _CSV_FIELDS, extra=chosen_cell)
 
 
+_DESIGN_CSV_FIELDS = (
+    "design", "scenario_file", "population", "assignment", "units", "clusters", "treatment_probability", "estimand",
+    "estimator", "variance_estimator", "estimates", "standard_error", "standard_error_mc_se", "mde", "mde_low", "mde_high",
+    "mde_sd_units", "size", "size_mc_se", "best_in_design", "best_design", "tied_with_best", "flags",
+)
+
+
+def _design_mark(row: DesignRow) -> str:
+    if row.best_design:
+        return "best design"
+    if row.tied_with_best:
+        return "tied"
+    return "design's best" if row.best_in_design else ""
+
+
+def render_designs(result: DesignComparison, console: Console) -> None:
+    console.print(f"[bold]Designs compared at about {result.units:,} units[/]{partial_mark(result)}", soft_wrap=True)
+    designs = new_table(None, ("design", "file", "population", "assignment"), left=("design", "file", "population", "assignment"))
+    for name, file, population, assignment in dict.fromkeys((r.design, r.scenario_file, r.population, r.assignment) for r in result.rows):
+        designs.add_row(name, file, population, assignment)
+    console.print(designs)
+    flag_cells, flag_notes = flag_references([row.flags for row in result.rows])
+    cell_of = {id(row): cell for row, cell in zip(result.rows, flag_cells)}
+    for family in ("direct", "spillover", "total"):
+        rows = [r for r in result.rows if r.estimand == family]
+        if not rows:
+            continue
+        table = new_table(
+            f"{family} effect", ("design", "pi", "test", "variance", "estimates", "SE ± MC se", "MDE [95% MC]", "MDE (SD units)", "size ± MC se", "mark", "flags"),
+            left=("design", "pi", "test", "variance", "estimates", "mark", "flags"),
+        )
+        last = None
+        for r in rows:
+            if last is not None and (r.design, r.treatment_probability) != last:
+                table.add_section()
+            last = (r.design, r.treatment_probability)
+            table.add_row(
+                r.design, "arms" if r.assignment.startswith(("randomized saturation", "cluster-randomized")) else f"{r.treatment_probability:g}", r.estimator, r.variance_estimator, r.estimates, plus_minus(r.standard_error, r.standard_error_mc_se),
+                interval(r.mde, r.mde_low, r.mde_high), fmt(r.mde_sd_units), plus_minus(r.size, r.size_mc_se), _design_mark(r), cell_of[id(r)],
+            )
+        console.print(table)
+    print_flag_notes(flag_notes, console)
+    console.print(
+        "MDE: the formula MDE, (critical value + power quantile) x SE, of each planned test at its design's own level and power; "
+        "SE: the estimator's Monte Carlo SD when the tested effect is zero; size: the test's rejection rate there. "
+        "design's best: the smallest MDE among a design's tests of that estimand; best design: the smallest of those; "
+        "tied: within two combined Monte Carlo SEs of it. pi: a Bernoulli design's treatment probability ('arms': a clustered "
+        "design's, listed above). The estimands differ between designs (the estimates column says "
+        "what each test estimates): a clustered design's spillover on the untreated at a saturation is not a network's "
+        "average spillover at a treatment probability, so weigh which one the study needs, not only the MDE.",
+        soft_wrap=True,
+    )
+    for w in result.warnings:
+        console.print(f"warning: {w}", soft_wrap=True)
+    for c in result.cautions:
+        console.print(f"caution: {c}", soft_wrap=True)
+
+
+def _compare_designs_command(
+    loaded: Scenario, designs: Sequence[Path], *, units: Sequence[int] | None, graphs: int | None, assignments: int | None,
+    seed: int | None, output_format: str, workers: int | None, cluster: str | None, store: Path | None, no_store: bool,
+) -> None:
+    others = [load_scenario(path) for path in designs]
+    if units is not None and len(units) > 1:
+        raise DesignCalcError("--units: a design comparison puts every design at one total size; give --units once")
+    with execution(loaded, workers, cluster, store, no_store) as where:
+        solve = partial(
+            compare_designs, [loaded, *others], units=units[0] if units else None, graphs=graphs, assignments_per_graph=assignments,
+            seed=seed, workers=where.workers, cluster=where.cluster, store=where.store,
+        )
+        result = simulate_with_progress(solve, known_total=False)
+    emit(result, output_format, table=render_designs, csv_text=lambda r: records_csv(r.rows, _DESIGN_CSV_FIELDS))
+
+
 def register(app: typer.Typer) -> None:
     @app.command("compare")
     def compare(
@@ -189,6 +270,7 @@ def register(app: typer.Typer) -> None:
         verify: Annotated[bool, typer.Option("--verify/--no-verify", help="Verify every MDE by simulation, as designcalc mde does (slower); default: the formula MDE.")] = False,
         precision: Annotated[float | None, typer.Option(help="With --verify: target half-width of each MDE's 95% Monte Carlo interval relative to the MDE, in (0, 0.5]; overrides simulation.relative_precision.")] = None,
         max_graphs: Annotated[int | None, graphs_option("With --verify: most graphs per design point spent on precision; overrides simulation.max_graphs.")] = None,
+        design: Annotated[list[Path] | None, typer.Option("--design", help="Another scenario whose design (population, assignment, tests) to put beside this one's at the same total number of units; repeat for several.")] = None,
         objective: Annotated[str | None, typer.Option(help="Pick one probability per size: the smallest MDE of this test, ESTIMAND[:ESTIMATOR[:VARIANCE]].")] = None,
         cap: Annotated[list[str] | None, typer.Option(help="With --objective: only probabilities where MDE(SPEC) <= VALUE (outcome units), as SPEC=VALUE; repeat for several.")] = None,
         output_format: OutputFormat = "table",
@@ -198,11 +280,28 @@ def register(app: typer.Typer) -> None:
         store: StorePath = None,
         no_store: NoStore = False,
     ) -> None:
-        """Compare treatment probabilities by SE, MDE and test size for every planned test, and pick one by a joint criterion."""
+        """Compare treatment probabilities by SE, MDE and test size for every planned test, and pick one by a joint criterion.
+
+        With --design: compare whole designs (one network against clustered and saturation designs) at one total size.
+        """
         loaded = load_checked(
             scenario, output_format, probabilities, probability_option="--probabilities", precision=precision,
             max_graphs=max_graphs, graphs=graphs,
         )
+        if design:
+            for name, given in (("--probabilities", probabilities), ("--objective", objective), ("--cap", cap), ("--verify", verify), ("--figures", figures)):
+                if given:
+                    raise DesignCalcError(f"{name} applies to comparing treatment probabilities; with --design the designs themselves are compared")
+            _compare_designs_command(
+                loaded, design, units=units, graphs=graphs, assignments=assignments, seed=seed, output_format=output_format,
+                workers=workers, cluster=cluster, store=store, no_store=no_store,
+            )
+            return
+        if loaded.design.saturation is not None:
+            raise DesignCalcError(
+                f"{loaded.source} assigns by clusters, so it has no treatment probability to vary; "
+                "put it beside other designs with --design OTHER.toml"
+            )
         sizes = units or loaded.population.units
         criterion = build_criterion(loaded, sizes, objective, cap or ())
 

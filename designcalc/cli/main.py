@@ -7,6 +7,7 @@ import sys
 
 import typer
 from rich.console import Console
+from rich.markup import escape
 
 from designcalc.errors import DesignCalcError
 
@@ -49,7 +50,8 @@ def run() -> None:
     try:
         code = app(standalone_mode=False)
     except DesignCalcError as exc:
-        stderr_console().print(f"[bold red]error:[/] {exc}", markup=True, soft_wrap=True)
+        # The message is text, not markup: "[population]" in a hint must print as written.
+        stderr_console().print(f"[bold red]error:[/] {escape(str(exc))}", markup=True, soft_wrap=True)
         sys.exit(2)
     except (typer.Abort, KeyboardInterrupt):
         stderr_console().print("interrupted")

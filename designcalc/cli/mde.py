@@ -11,6 +11,7 @@ from rich.console import Console
 from designcalc.cli.output import (
     Assignments,
     Cluster,
+    Clusters,
     Workers,
     FiguresDir,
     OutputFormat,
@@ -19,6 +20,7 @@ from designcalc.cli.output import (
     TreatmentProbabilities,
     Units,
     check_figures_dir,
+    size_label,
     emit,
     flag_references,
     fmt,
@@ -66,7 +68,8 @@ def render_table(result: MdeResult, console: Console, *, scenario: Scenario, pre
     table = new_table(
         f"Minimum detectable effects: {result.scenario_name}" + partial_mark(result),
         (
-            "estimand", "estimator", "variance", "n", "pi", "reference", "SE ± MC se", "MDE [95% MC]", "MDE (SD units)",
+            "estimand", "estimator", "variance", "clusters" if any(r.clusters for r in result.records) else "n",
+            "share treated" if any(r.clusters for r in result.records) else "pi", "reference", "SE ± MC se", "MDE [95% MC]", "MDE (SD units)",
             "verified power ± MC se", "size", "method", "flags",
         ),
         left=("estimand", "estimator", "variance", "reference", "method", "flags"),
@@ -74,7 +77,7 @@ def render_table(result: MdeResult, console: Console, *, scenario: Scenario, pre
     flag_cells, flag_notes = flag_references([r.flags for r in result.records])
     for r, flag_cell in zip(result.records, flag_cells):
         table.add_row(
-            r.estimand, r.estimator, r.variance_estimator, str(r.units), f"{r.treatment_probability:g}", r.reference_distribution,
+            r.estimand, r.estimator, r.variance_estimator, size_label(r), f"{r.treatment_probability:.3g}", r.reference_distribution,
             plus_minus(r.standard_error, r.standard_error_mc_se), interval(r.mde, r.mde_low, r.mde_high), fmt(r.mde_sd_units),
             plus_minus(r.verified_power, r.verified_power_mc_se), fmt(r.size), _method_cell(r), flag_cell,
         )
@@ -123,6 +126,7 @@ def register(app: typer.Typer) -> None:
     def mde(
         scenario: ScenarioFile,
         units: Units = None,
+        clusters: Clusters = None,
         treatment_probability: TreatmentProbabilities = None,
         graphs: Annotated[int | None, graphs_option("Graphs per design point to start with.")] = None,
         assignments: Assignments = None,
@@ -147,7 +151,7 @@ def register(app: typer.Typer) -> None:
         check_figures_dir(figures)
         with execution(loaded, workers, cluster, store, no_store) as where:
             solve = partial(
-                minimum_detectable_effects, loaded, units=units, treatment_probabilities=treatment_probability, graphs=graphs,
+                minimum_detectable_effects, loaded, units=units, clusters=clusters, treatment_probabilities=treatment_probability, graphs=graphs,
                 assignments_per_graph=assignments, seed=seed, relative_precision=precision, max_graphs=max_graphs, verify=verify,
                 workers=where.workers, cluster=where.cluster, store=where.store,
             )

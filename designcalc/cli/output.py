@@ -79,6 +79,10 @@ Units = Annotated[
     list[int] | None,
     typer.Option("--units", "-n", min=4, max=2_000_000, help="Network size(s), overriding population.units; repeat for several."),
 ]
+Clusters = Annotated[
+    list[int] | None,
+    typer.Option("--clusters", "-c", min=2, max=100_000, help="Number(s) of clusters of a clustered population, overriding population.clusters; repeat for several."),
+]
 TreatmentProbabilities = Annotated[
     list[float] | None,
     typer.Option("--treatment-probability", "-p", help="Treatment probability(ies) in (0, 1); repeat for several."),
@@ -188,6 +192,12 @@ def precision_settings(scenario: Scenario, precision: float | None, max_graphs: 
     requested = scenario.simulation.relative_precision if precision is None else precision
     cap = max(scenario.simulation.max_graphs if max_graphs is None else max_graphs, graphs or scenario.simulation.graphs)
     return requested, cap
+
+
+def size_label(record: Any) -> str:
+    """A record's size: its units, or for a clustered population its clusters and nominal units."""
+    clusters = getattr(record, "clusters", 0)
+    return f"{clusters} (~{record.units} units)" if clusters else str(record.units)
 
 
 def fmt(x: float | None, digits: int = 3) -> str:

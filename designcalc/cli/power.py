@@ -10,6 +10,7 @@ from rich.console import Console
 
 from designcalc.cli.output import (
     Cluster,
+    Clusters,
     Workers,
     Assignments,
     FiguresDir,
@@ -19,6 +20,7 @@ from designcalc.cli.output import (
     TreatmentProbabilities,
     Units,
     check_figures_dir,
+    size_label,
     emit,
     fmt,
     graphs_option,
@@ -38,19 +40,21 @@ _CSV_FIELDS = (
     "estimand", "estimator", "variance_estimator", "units", "treatment_probability", "true_effect",
     "true_effect_spread", "mean_estimate", "bias", "bias_mc_se", "sd", "rmse", "mean_standard_error",
     "power", "power_mc_se", "oracle_power", "oracle_power_mc_se", "size", "size_mc_se", "coverage",
-    "coverage_mc_se", "reference_distribution", "replicates", "graphs", "flags",
+    "coverage_mc_se", "reference_distribution", "replicates", "graphs", "flags", "clusters",
 )
 
 
 def render_table(result: PowerResult, console: Console) -> None:
+    clustered = any(r.clusters for r in result.records)
     table = new_table(
         f"Power: {result.scenario_name}" + partial_mark(result),
-        ("estimand", "estimator", "variance", "n", "pi", "true", "bias", "sd", "power ± MC se", "oracle", "size", "coverage", "flags"),
+        ("estimand", "estimator", "variance", "clusters" if clustered else "n", "share treated" if clustered else "pi",
+         "true", "bias", "sd", "power ± MC se", "oracle", "size", "coverage", "flags"),
         left=("estimand", "estimator", "variance", "flags"),
     )
     for r in result.records:
         table.add_row(
-            r.estimand, r.estimator, r.variance_estimator, str(r.units), f"{r.treatment_probability:g}",
+            r.estimand, r.estimator, r.variance_estimator, size_label(r), f"{r.treatment_probability:.3g}",
             fmt(r.true_effect), fmt(r.bias), fmt(r.sd), f"{fmt(r.power)} ± {fmt(r.power_mc_se)}",
             fmt(r.oracle_power), fmt(r.size), fmt(r.coverage), "; ".join(r.flags),
         )
@@ -81,6 +85,7 @@ def register(app: typer.Typer) -> None:
     def power(
         scenario: ScenarioFile,
         units: Units = None,
+        clusters: Clusters = None,
         treatment_probability: TreatmentProbabilities = None,
         graphs: Annotated[int | None, graphs_option("Graphs per design point.")] = None,
         assignments: Assignments = None,
@@ -100,7 +105,7 @@ def register(app: typer.Typer) -> None:
             solve = partial(
                 simulate_power, loaded, units=units, treatment_probabilities=treatment_probability, graphs=graphs,
                 assignments_per_graph=assignments, seed=seed, adaptive=adaptive,
-                workers=where.workers, cluster=where.cluster, store=where.store,
+                workers=where.workers, cluster=where.cluster, store=where.store, clusters=clusters,
             )
             result = simulate_with_progress(solve, known_total=True)
         write_figures(figures, lambda: _figures(result, loaded))

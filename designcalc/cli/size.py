@@ -1,4 +1,4 @@
-"""``designcalc size SCENARIO``: the number of units each planned test needs for the target power."""
+"""``designcalc size SCENARIO``: the number of units (or clusters) each planned test needs for the target power."""
 
 from __future__ import annotations
 
@@ -36,13 +36,13 @@ from designcalc.cli.output import (
     write_figures,
 )
 from designcalc.cli.running import NoStore, StorePath, execution
-from designcalc.sample_size import SizeRecord, SizeResult, required_sample_size
+from designcalc.sample_size import SizeRecord, SizeResult, required_sample_size, size_axis_and_limit
 from designcalc.scenario import Scenario
 
 _CSV_FIELDS = (
     "estimand", "estimator", "variance_estimator", "treatment_probability", "status", "required_units", "units_low",
     "units_high", "verified_units", "verified_power", "verified_power_mc_se", "relative_precision",
-    "reference_distribution", "sd_slope", "reason", "flags", "points",
+    "reference_distribution", "sd_slope", "reason", "flags", "points", "size_axis", "clusters", "closed_form", "closed_form_note",
 )
 
 
@@ -61,21 +61,66 @@ def _points_cell(r: SizeRecord) -> str:
     return ";".join(f"{p.units}:{p.power:.3f}" for p in r.points)
 
 
+_AXIS_WORDS = {"units": "n", "clusters": "clusters", "cluster_size": "cluster size"}
+
+
 def render_table(result: SizeResult, console: Console, *, scenario: Scenario, limit: int, precision: float, max_graphs: int) -> None:
+    axis = result.records[0].size_axis if result.records else ("clusters" if scenario.population.clustered else "units")
+    word = _AXIS_WORDS[axis]
+    closed = any(math.isfinite(r.closed_form) or r.closed_form_note for r in result.records)
+    columns = ["estimand", "estimator", "variance", "share treated" if axis != "units" else "pi", "status", f"required {word} [95% MC]",
+               f"verified at {word}", "power ± MC se", "SD slope"] + (["closed form"] if closed else []) + ["reason / flags"]
     table = new_table(
         f"Required sample size: {result.scenario_name}" + partial_mark(result),
-        ("estimand", "estimator", "variance", "pi", "status", "required n [95% MC]", "verified at n", "power ± MC se", "SD slope", "reason / flags"),
+        columns,
         left=("estimand", "estimator", "variance", "status", "reason / flags"),
     )
-    flag_cells, flag_notes = flag_references([((r.reason,) if r.reason else ()) + r.flags for r in result.records])
+    flag_cells, flag_notes = flag_references([
+        ((r.reason,) if r.reason else ()) + r.flags + ((r.closed_form_note,) if r.closed_form_note and not math.isfinite(r.closed_form) else ())
+        for r in result.records
+    ])
     for r, flag_cell in zip(result.records, flag_cells):
-        table.add_row(
-            r.estimand, r.estimator, r.variance_estimator, f"{r.treatment_probability:g}", r.status, _required_cell(r),
+        cells = [
+            r.estimand, r.estimator, r.variance_estimator, f"{r.treatment_probability:.3g}", r.status, _required_cell(r),
             "-" if r.verified_units is None else f"{r.verified_units:,}", plus_minus(r.verified_power, r.verified_power_mc_se),
-            "-" if not math.isfinite(r.sd_slope) else f"{r.sd_slope:+.2f}", flag_cell,
-        )
+            "-" if not math.isfinite(r.sd_slope) else f"{r.sd_slope:+.2f}",
+        ]
+        if closed:
+            cells.append(f"{r.closed_form:.1f}" if math.isfinite(r.closed_form) else "-")
+        table.add_row(*cells, flag_cell)
     console.print(table)
     print_flag_notes(flag_notes, console)
+    if axis != "units":
+        _clustered_notes(result, console, scenario=scenario, axis=axis, limit=limit, closed=closed)
+    else:
+        _network_notes(console, scenario=scenario, limit=limit)
+    _common_notes(result, console, precision=precision, max_graphs=max_graphs)
+
+
+def _clustered_notes(result: SizeResult, console: Console, *, scenario: Scenario, axis: str, limit: int, closed: bool) -> None:
+    population = scenario.population
+    if axis == "clusters":
+        text = (
+            f"clusters: the number of clusters in the whole study ({population.cluster_sizes.describe()}), each cluster's network "
+            f"drawn under the density rule at its own size ({scenario.density.describe()}); searched up to {limit:,} clusters."
+        )
+    else:
+        text = (
+            f"cluster size: the units in every one of {result.records[0].clusters if result.records else 0} clusters, each cluster's "
+            f"network drawn under the density rule at that size ({scenario.density.describe()}); searched up to {limit:,} units per cluster. "
+            "With a cluster random effect, power comes from the number of clusters: past some size, larger clusters stop helping."
+        )
+    console.print(text, soft_wrap=True)
+    if closed:
+        console.print(
+            "closed form: the answer of METHODS.md §5.2's formulas for the same contrast (no network, equal clusters of the mean size, "
+            "normal approximation, the simulated true effect and the outcome's variance); a gap to the simulation is the network's "
+            "(and unequal sizes', and the t reference's) doing.",
+            soft_wrap=True,
+        )
+
+
+def _network_notes(console: Console, *, scenario: Scenario, limit: int) -> None:
     console.print(
         f"n: the number of units in the whole network (treated and untreated together), each network drawn under the "
         f"scenario's density rule ({scenario.density.describe()}). Required n: the smallest such network at which the "
@@ -84,6 +129,9 @@ def render_table(result: SizeResult, console: Console, *, scenario: Scenario, li
         "is reported as not reachable.",
         soft_wrap=True,
     )
+
+
+def _common_notes(result: SizeResult, console: Console, *, precision: float, max_graphs: int) -> None:
     console.print(
         "verified at n: the size simulated last, with its power; the required n is one probit step in log n from there. "
         "SD slope: the log-log slope of the estimator's SD in n over the simulated sizes (-0.50 when the SD shrinks like n^-1/2). "
@@ -113,7 +161,9 @@ def register(app: typer.Typer) -> None:
     def size(
         scenario: ScenarioFile,
         treatment_probability: TreatmentProbabilities = None,
-        max_units: Annotated[int | None, typer.Option(min=8, max=2_000_000, help="Largest network size searched; overrides population.max_units.")] = None,
+        max_units: Annotated[int | None, typer.Option(min=8, max=2_000_000, help="Largest network size searched (with --per-cluster: the largest cluster size); overrides population.max_units.")] = None,
+        per_cluster: Annotated[int | None, typer.Option("--per-cluster", min=2, max=100_000, help="Clustered population: search the size of every one of this many clusters, instead of the number of clusters.")] = None,
+        max_clusters: Annotated[int | None, typer.Option(min=4, max=100_000, help="Clustered population: the most clusters searched; overrides population.max_clusters.")] = None,
         graphs: Annotated[int | None, graphs_option("Graphs at the verified size to start with (the coarse grid uses a quarter of this, at least 8).")] = None,
         assignments: Assignments = None,
         seed: Seed = None,
@@ -128,7 +178,7 @@ def register(app: typer.Typer) -> None:
     ) -> None:
         """Units needed for the target power, per treatment probability and planned test; no scaling law assumed."""
         loaded = load_checked(scenario, output_format, treatment_probability, precision=precision, max_graphs=max_graphs, graphs=graphs)
-        limit = max_units or loaded.population.search_limit
+        limit = size_axis_and_limit(loaded, per_cluster, max_units, max_clusters)[1]
         requested, cap = precision_settings(loaded, precision, max_graphs, graphs)
 
         def table(res: SizeResult, console: Console) -> None:
@@ -139,7 +189,7 @@ def register(app: typer.Typer) -> None:
             solve = partial(
                 required_sample_size, loaded, treatment_probabilities=treatment_probability, max_units=max_units, graphs=graphs,
                 assignments_per_graph=assignments, seed=seed, relative_precision=precision, max_graphs=max_graphs,
-                workers=where.workers, cluster=where.cluster, store=where.store,
+                workers=where.workers, cluster=where.cluster, store=where.store, cluster_size_for=per_cluster, max_clusters=max_clusters,
             )
             result = simulate_with_progress(solve, known_total=False)
         write_figures(figures, lambda: _figures(result, loaded))

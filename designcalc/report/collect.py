@@ -33,6 +33,7 @@ from designcalc.compare import (
 )
 from designcalc.diagnostics import ScenarioCheck, check_scenario
 from designcalc.engine import (
+    test_reference,
     ESTIMANDS,
     DesignPoint,
     EngineProgress,
@@ -43,7 +44,7 @@ from designcalc.engine import (
 )
 from designcalc.errors import DesignCalcError
 from designcalc.figures import SamplingSample
-from designcalc.inference import critical_value, reference_distribution
+from designcalc.inference import critical_value
 from designcalc.mde import MdeResult, minimum_detectable_effects
 from designcalc.multiplicity import (
     bonferroni_alpha,
@@ -282,7 +283,7 @@ class _Capture:
         for key in family:
             est = np.stack([d.estimates[key] for d in draws])
             se = np.stack([d.standard_errors[key] for d in draws])
-            reference = reference_distribution(design.reference_distribution, key[0], key[1], point.units, self.scenario.n_covariates)
+            reference = test_reference(self.scenario, point, key)
             critical = critical_value(design.significance_level, design.alternative, reference.df)
             # The power table's own rule and mask (power.summarise_design_point), so the unadjusted
             # rate is that table's power exactly; p-values only order the tests for Holm.
@@ -299,7 +300,7 @@ class _Capture:
             for key in (k for k in self.tests if k in available):
                 estimates = np.concatenate([d.estimates[key] for d in draws])
                 nulls = np.concatenate([d.null_estimates[key] for d in draws])
-                truth = float(np.mean([d.estimands.value(key[0]) for d in draws]))
+                truth = float(np.mean([d.estimands.truth(key) for d in draws]))
                 self.samples.append(SamplingSample(*key, point.units, point.treatment_probability, nulls, estimates, truth))
 
 
