@@ -101,6 +101,7 @@ class CompareRow(FlaggedRecord):
     best: bool
     tied_with_best: bool
     flags: tuple[str, ...] = ()
+    clusters: int = 0  # a clustered population's number of clusters (``units`` is then their nominal total)
 
 
 @dataclass(frozen=True)
@@ -167,6 +168,7 @@ def compare_treatment_probabilities(
     workers: int = 1,
     cluster: Cluster | None = None,
     store: ResultStore | None = None,
+    clusters: Sequence[int] | None = None,
 ) -> CompareResult:
     """Compare treatment probabilities for every planned size and test (module docstring).
 
@@ -192,7 +194,7 @@ def compare_treatment_probabilities(
     mde = minimum_detectable_effects(
         scenario, units=units, treatment_probabilities=grid, graphs=graphs, assignments_per_graph=assignments_per_graph,
         seed=seed, relative_precision=relative_precision, max_graphs=max_graphs, verify=verify,
-        batch_size=batch_size, progress=progress, workers=workers, cluster=cluster, store=store,
+        batch_size=batch_size, progress=progress, workers=workers, cluster=cluster, store=store, clusters=clusters,
     )
     records = list(mde.records)
     groups: dict[tuple[int, str, str, str], list[MdeRecord]] = {}
@@ -216,7 +218,7 @@ def compare_treatment_probabilities(
             variance_estimator=r.variance_estimator, standard_error=r.standard_error, standard_error_mc_se=r.standard_error_mc_se,
             mean_estimated_se=r.mean_estimated_se, mde=r.mde, mde_low=r.mde_low, mde_high=r.mde_high, mde_sd_units=r.mde_sd_units,
             size=r.size, size_mc_se=r.size_mc_se, method=r.method, best=id(r) in best_ids, tied_with_best=id(r) in tied_ids,
-            flags=r.flags,
+            flags=r.flags, clusters=r.clusters,
         )
         for r in records
     )

@@ -366,3 +366,21 @@ def test_contrast_degrees_of_freedom_follow_the_clusters_compared():
     assert saturation.contrast_df(design, 40, "itt_pooled") == 40 - 2
     assert saturation.contrast_df(design, 40, "snt_slope") == 28 - 2
     assert scipy.stats.t.ppf(0.975, 20) > scipy.stats.norm.ppf(0.975)
+
+
+def test_a_report_on_a_saturation_design_counts_clusters_and_explains_what_it_skips():
+    from designcalc.report import ReportSettings, build_report
+    from designcalc.report.render import design_in_words, reproduce_command
+    from designcalc.report.tables import report_tables
+
+    report = build_report(_tarn(), ReportSettings(clusters=(12,), graphs=3, assignments_per_graph=3, precision=0.5, search_graphs=4))
+    assert [k[1] for k in report.tests] == ["snt_pooled", "itt_pooled"]  # the pooled contrasts head the key answers
+    tables = {t.id: t for t in report_tables(report)}
+    key = tables["key-answers"]
+    assert [c.header for c in key.columns][4] == "required clusters" and key.columns[-1].header == "MDE at 12 clusters"
+    assert [c.header for c in tables["power"].columns][:3] == ["clusters", "units (nominal)", "share treated"]
+    assert all(row[0] == 12 for row in tables["power"].rows)
+    assert tables["treatment-probabilities"].rows == () and tables["treatment-probabilities"].caption.startswith("Not computed")
+    words = dict(design_in_words(report))
+    assert words["Population"].startswith("12 clusters") and "pure control" in words["Design"]
+    assert "--clusters 12" in reproduce_command(report)

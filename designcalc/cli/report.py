@@ -14,6 +14,7 @@ from rich.progress import Progress, SpinnerColumn, TextColumn, TimeElapsedColumn
 from designcalc.cli.output import (
     Assignments,
     Cluster,
+    Clusters,
     ScenarioFile,
     Seed,
     Units,
@@ -38,6 +39,7 @@ def register(app: typer.Typer) -> None:
         scenario: ScenarioFile,
         out: Annotated[Path, typer.Option("--out", "-o", help="Folder to write (created; an earlier report there is replaced whole).")],
         units: Units = None,
+        clusters: Clusters = None,
         treatment_probability: Annotated[list[float] | None, typer.Option("--treatment-probability", "-p", help="Treatment probability(ies) in (0, 1); repeat for several.")] = None,
         test: Annotated[list[str] | None, typer.Option("--test", help="Key-answer test ESTIMAND[:ESTIMATOR[:VARIANCE]]; repeat for several (default: the first planned test of each estimand).")] = None,
         all_tests: Annotated[bool, typer.Option("--all-tests", help="Solve MDE and sample size for every planned test (slower).")] = False,
@@ -46,8 +48,8 @@ def register(app: typer.Typer) -> None:
         assignments: Assignments = None,
         seed: Seed = None,
         search_graphs: Annotated[int | None, graphs_option("Graphs the sample-size search starts from (default: half of the graphs, at least 8).")] = None,
-        max_units: Annotated[int | None, typer.Option(min=8, max=2_000_000, help="Largest network size the sample-size search tries.")] = None,
-        compare_units: Annotated[int | None, typer.Option(min=4, max=2_000_000, help="Size at which treatment probabilities are compared (default: the middle planned size).")] = None,
+        max_units: Annotated[int | None, typer.Option(min=8, max=2_000_000, help="Largest network size the sample-size search tries (clustered population: the most clusters).")] = None,
+        compare_units: Annotated[int | None, typer.Option(min=4, max=2_000_000, help="Size at which treatment probabilities are compared (default: the middle planned size; clustered population: a number of clusters).")] = None,
         workers: Workers = None,
         cluster: Cluster = None,
         store: StorePath = None,
@@ -60,7 +62,7 @@ def register(app: typer.Typer) -> None:
         check_precision(precision)
         settings = ReportSettings(
             tests=tuple(test or ()), all_tests=all_tests, precision=precision, search_graphs=search_graphs or 0,
-            max_units=max_units, compare_units=compare_units or 0, units=tuple(units or ()),
+            max_units=max_units, compare_units=compare_units or 0, units=tuple(units or ()), clusters=tuple(clusters or ()),
             treatment_probabilities=tuple(treatment_probability or ()), graphs=graphs, assignments_per_graph=assignments, seed=seed,
         )
         loaded = load_scenario(scenario)

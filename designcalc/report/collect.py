@@ -33,6 +33,7 @@ from designcalc.compare import (
 )
 from designcalc.diagnostics import ScenarioCheck, check_scenario
 from designcalc.engine import (
+    clustered_point,
     test_reference,
     ESTIMANDS,
     DesignPoint,
@@ -83,9 +84,11 @@ class ReportSettings:
     ``search_graphs`` is the number of graphs the size search starts from
     (0: half the scenario's, at least 8; more are added until the precision
     is met); ``compare_units`` is the size of the MDE-against-probability
-    comparison (0: the middle planned size, the lower of two).  ``units``,
-    ``treatment_probabilities``, ``graphs``, ``assignments_per_graph`` and
-    ``seed`` override the scenario, as on the command line.
+    comparison (0: the middle planned size, the lower of two).  ``units``
+    (``clusters`` for a clustered population), ``treatment_probabilities``,
+    ``graphs``, ``assignments_per_graph`` and ``seed`` override the
+    scenario, as on the command line.  For a clustered population
+    ``max_units`` and ``compare_units`` count clusters.
     """
 
     tests: tuple[str, ...] = ()
@@ -101,6 +104,7 @@ class ReportSettings:
     seed: int | None = None
     batch_size: int = 16
     workers: int = 1  # local processes for every phase; a speed knob, not in the provenance
+    clusters: tuple[int, ...] = ()
 
     def __post_init__(self) -> None:
         if not 0 < self.precision <= 0.5:
@@ -174,6 +178,7 @@ class FamilyPowerRow:
     holm_power: float
     holm_power_mc_se: float
     replicates: int
+    clusters: int = 0
 
 
 @dataclass(frozen=True)
@@ -243,6 +248,9 @@ def _chosen_tests(scenario: Scenario, settings: ReportSettings) -> tuple[Key, ..
                 message = str(exc)
                 raise DesignCalcError(message if message.startswith("--test") else f"--test: {message}") from None
         return tuple(dict.fromkeys(chosen))
+    if scenario.design.saturation is not None:
+        # A saturation design's headline answers are its pooled contrasts (METHODS.md §5.1) when planned.
+        keys = sorted(keys, key=lambda k: not k[1].endswith("_pooled"))
     firsts = [next(k for k in keys if k[0] == e) for e in ESTIMANDS if any(k[0] == e for k in keys)]
     return tuple(firsts)
 
@@ -325,7 +333,7 @@ def _family_power(capture: _Capture, alpha: float) -> list[FamilyPowerRow]:
             rows.append(
                 FamilyPowerRow(
                     point.units, point.treatment_probability, *key,
-                    *rates["single"], *rates["bonferroni"], *rates["holm"], int(valid[:, j].sum()),
+                    *rates["single"], *rates["bonferroni"], *rates["holm"], int(valid[:, j].sum()), point.clusters,
                 )
             )
     return rows
@@ -407,14 +415,15 @@ def build_report(
     settings = settings or ReportSettings()
     scenario = _override(
         scenario, settings.units or None, settings.treatment_probabilities or None,
-        settings.graphs, settings.assignments_per_graph, settings.seed,
+        settings.graphs, settings.assignments_per_graph, settings.seed, settings.clusters or None,
     )
+    clustered = scenario.population.clustered
     check = check_scenario(scenario)
     tests = _chosen_tests(scenario, settings)
     family = _family(scenario, tests)
     solving = scenario if settings.all_tests else restrict_tests(scenario, tests)
     units = scenario.population.units
-    sample_point = DesignPoint(units[-1], scenario.design.treatment_probabilities[0])
+    sample_point = _point(scenario, -1)
     capture = _Capture(scenario, family, tests, sample_point)
 
     def phase(name: str) -> Callable[[EngineProgress], None] | None:
@@ -422,7 +431,8 @@ def build_report(
 
     G = scenario.simulation.graphs
     search_graphs = settings.search_graphs or max(8, G // 2)
-    compare_units = settings.compare_units or units[(len(units) - 1) // 2]
+    sizes = scenario.population.clusters if clustered else units  # what a clustered study counts: clusters
+    compare_units = settings.compare_units or sizes[(len(sizes) - 1) // 2]
     power = simulate_power(scenario, batch_size=settings.batch_size, progress=phase("power"), on_point=capture, workers=settings.workers,
         cluster=cluster, store=store,
     )
@@ -439,18 +449,26 @@ def build_report(
         ))
     else:
         size = required_sample_size(
-            solving, graphs=search_graphs, relative_precision=settings.precision, max_units=settings.max_units,
+            solving, graphs=search_graphs, relative_precision=settings.precision,
+            max_units=None if clustered else settings.max_units, max_clusters=settings.max_units if clustered else None,
             batch_size=settings.batch_size, progress=phase("sample size"), workers=settings.workers,
             cluster=cluster, store=store,
         )
     _refuse_partial(size.partial)
-    compare = compare_treatment_probabilities(
-        solving, units=[compare_units], batch_size=settings.batch_size, progress=phase("treatment probabilities"),
-        workers=settings.workers, cluster=cluster, store=store,
-    )
+    if scenario.design.saturation is not None:
+        # A two-stage design's arms fix who is treated: there is no treatment probability to vary.
+        compare = CompareResult(scenario.name, (), (), provenance(scenario), (
+            "a clustered design's arms set who is treated, so treatment probabilities are not compared; "
+            "`designcalc compare --design` puts it beside other designs",
+        ))
+    else:
+        compare = compare_treatment_probabilities(
+            solving, units=None if clustered else [compare_units], clusters=[compare_units] if clustered else None,
+            batch_size=settings.batch_size, progress=phase("treatment probabilities"), workers=settings.workers, cluster=cluster, store=store,
+        )
     _refuse_partial(compare.partial)
 
-    point = DesignPoint(units[0], scenario.design.treatment_probabilities[0])
+    point = _point(scenario, 0)
     net, treated = example_network(scenario, point)
     network = ExampleNetwork(point, net.adjacency, net.blocks, net.types, treated)
 
@@ -473,6 +491,14 @@ def build_report(
 def _refuse_partial(partial: bool) -> None:
     if partial:
         raise KeyboardInterrupt
+
+
+def _point(scenario: Scenario, index: int) -> DesignPoint:
+    """The design point of the ``index``-th planned size at the first treatment probability."""
+    pi = scenario.design.treatment_probabilities[0]
+    if scenario.population.clustered:
+        return clustered_point(scenario, scenario.population.clusters[index], pi)
+    return DesignPoint(scenario.population.units[index], pi)
 
 
 def _report_provenance(

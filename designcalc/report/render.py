@@ -55,32 +55,67 @@ def design_in_words(report: Report) -> list[tuple[str, str]]:
     sim = s.simulation
     sizes = ", ".join(f"{n:,}" for n in s.population.units)
     probabilities = ", ".join(f"{p:g}" for p in d.treatment_probabilities)
+    population = s.population
+    if population.clustered:
+        counts = ", ".join(f"{c:,}" for c in population.clusters)
+        who = (
+            f"{counts} clusters (each number planned separately), {population.cluster_sizes.describe()}; each cluster is its own "
+            "network, drawn with the density rule at its own size, with no ties between clusters"
+        )
+    else:
+        who = f"one connected study population (a single network) of {sizes} units, each size planned separately"
+    if d.saturation is not None:
+        assignment = f"{d.saturation.describe()} (clusters are allocated to the arms in fixed numbers at random, then units within each cluster)."
+    elif population.clustered:
+        assignment = f"independent (Bernoulli) assignment of each unit to treatment with probability {probabilities}, within every cluster."
+    else:
+        assignment = f"independent (Bernoulli) assignment of each unit to treatment with probability {probabilities}."
     lines = [
-        ("Population", f"one connected study population (a single network) of {sizes} units, each size planned separately."),
+        ("Population", who + "."),
         ("Network model", f"{s.network.describe()}." if s.network.kind == "surveyed" else f"{s.network.describe()}; {s.density.describe()}."),
         ("Outcome model", f"{s.outcome.describe()}; interference runs through the share of a unit's contacts who are treated."),
     ]
     if s.covariates is not None:
         lines.append(("Baseline covariates", report.check.covariate_note.removeprefix("baseline covariates: ") + "."))
     lines += [
-        ("Design", f"independent (Bernoulli) assignment of each unit to treatment with probability {probabilities}."),
-        ("Estimands", "; ".join(_ESTIMAND_WORDS[e] for e in ("direct", "spillover", "total")) + "."),
+        ("Design", assignment),
+        ("Estimands", _estimands_in_words(report)),
         ("Estimators and tests", _tests_in_words(report)),
-        ("Significance and power", f"{d.alternative} Wald tests at level α = {d.significance_level:g}; target power {d.target_power:.0%}; reference distribution: {d.reference_distribution} ({_reference_words(d.reference_distribution)})."),
+        ("Significance and power", f"{d.alternative} Wald tests at level α = {d.significance_level:g}; target power {d.target_power:.0%}; reference distribution: {d.reference_distribution} ({_reference_words(d.reference_distribution, d.saturation is not None)})."),
         ("Regime", f"{report.check.regime}. {report.check.regime_explanation}"),
         ("Simulation", f"{sim.graphs} networks per design point, {sim.assignments_per_graph} assignments on each ({sim.replicates} replicates); root seed {sim.seed}; MDE and required size to ±{report.settings.precision:.0%} (relative half-width of the 95% Monte Carlo interval)."),
     ]
     return lines
 
 
-def _reference_words(setting: str) -> str:
+def _reference_words(setting: str, clustered: bool = False) -> str:
     if setting == "normal":
         return "the normal for every test"
+    if clustered:
+        return "t quantiles with degrees of freedom from the clusters compared (clusters involved minus arms compared)"
     return "t quantiles with n − 2 degrees of freedom for the direct-effect tests (fewer for regressions), the normal for the network spillover tests and the totals"
+
+
+def _estimands_in_words(report: Report) -> str:
+    saturation = report.scenario.design.saturation
+    if saturation is None:
+        return "; ".join(_ESTIMAND_WORDS[e] for e in ("direct", "spillover", "total")) + "."
+    from designcalc.saturation import contrast_names, describe_contrast
+
+    return (
+        "contrasts against the pure-control clusters (METHODS.md §5), each with its exact truth on every simulated population: "
+        + "; ".join(f"{name}: {describe_contrast(name)}" for name in contrast_names(saturation)) + "."
+    )
 
 
 def _tests_in_words(report: Report) -> str:
     plan = report.scenario.estimators
+    if report.scenario.design.saturation is not None:
+        chosen = ", ".join(f"{k[0]}: {k[1]}" for k in report.tests)
+        return (
+            "unit-weighted differences of cell means with cluster-robust (CR1) standard errors (slopes: OLS on cluster means, HC1), "
+            f"t tests with degrees of freedom from the clusters compared; the key answers use {chosen}."
+        )
     planned = f"direct: {', '.join(plan.direct)} with {', '.join(plan.direct_variance)} variance; spillover: {', '.join(plan.spillover)}"
     chosen = ", ".join(f"{k[0]}: {k[1]} / {k[2]}" for k in report.tests)
     return f"planned tests ({planned}); the key answers use {chosen}."
@@ -92,6 +127,8 @@ def reproduce_command(report: Report, out: str = "REPORT_DIR") -> str:
     parts = ["designcalc", "report", scenario_copy_path(report), "--out", out]
     for n in st.units:
         parts += ["--units", str(n)]
+    for c in st.clusters:
+        parts += ["--clusters", str(c)]
     for p in st.treatment_probabilities:
         parts += ["--treatment-probability", repr(p)]
     for flag, value in (("--graphs", st.graphs), ("--assignments", st.assignments_per_graph), ("--seed", st.seed)):

@@ -116,13 +116,28 @@ def format_cell(value: object, column: Column) -> str:
 _TEST_COLUMNS = (Column("estimator", "estimator"), Column("variance", "variance_estimator"))
 
 
+def _size_columns(report: Report) -> tuple[Column, ...]:
+    """Where a record was simulated: its units, or a clustered study's clusters and nominal units, and its share treated."""
+    clustered = report.scenario.population.clustered
+    share = "share treated" if report.scenario.design.saturation is not None else "treatment probability"
+    sizes = (Column("clusters", "clusters", "int"), Column("units (nominal)", "units", "int")) if clustered else (Column("units", "units", "int"),)
+    return (*sizes, Column(share, "treatment_probability", "fixed", 3 if clustered else 2))
+
+
+def _counted(report: Report) -> str:
+    """What a required size counts."""
+    return "clusters" if report.scenario.population.clustered else "units"
+
+
 def key_answers_table(report: Report) -> Table:
-    units = report.scenario.population.units
+    population = report.scenario.population
+    units = population.units
+    labels = [f"{c} clusters" for c in population.clusters] if population.clustered else [f"{n} units" for n in units]
     columns = (
-        Column("estimand", "estimand"), *_TEST_COLUMNS, Column("treatment probability", "treatment_probability", "fixed", 2),
-        Column("required units", "required_units", "int"), Column("95% MC low", "units_low", "int"),
+        Column("estimand", "estimand"), *_TEST_COLUMNS, _size_columns(report)[-1],
+        Column(f"required {_counted(report)}", "required_units", "int"), Column("95% MC low", "units_low", "int"),
         Column("95% MC high", "units_high", "int"), Column("status", "status"),
-        *(Column(f"MDE at {n} units", f"mde_at_{n}", "sig", 3) for n in units),
+        *(Column(f"MDE at {label}", f"mde_at_{n}", "sig", 3) for n, label in zip(units, labels)),
     )
     rows = []
     missing = "size fixed (surveyed network)" if report.scenario.network.kind == "surveyed" else "not computed"
@@ -141,7 +156,7 @@ def key_answers_table(report: Report) -> Table:
             ))
     return Table(
         "key-answers", "Required size and minimum detectable effect per estimand",
-        f"Units needed for {report.scenario.design.target_power:.0%} power and the minimum detectable effect "
+        f"{_counted(report).capitalize()} needed for {report.scenario.design.target_power:.0%} power and the minimum detectable effect "
         "(outcome units) at each planned size, per estimand; 95% Monte Carlo intervals of the required size.",
         columns, tuple(rows),
     )
@@ -149,7 +164,7 @@ def key_answers_table(report: Report) -> Table:
 
 def power_table(report: Report) -> Table:
     columns = (
-        Column("units", "units", "int"), Column("treatment probability", "treatment_probability", "fixed", 2),
+        *_size_columns(report),
         Column("estimand", "estimand"), *_TEST_COLUMNS, Column("true effect", "true_effect", "sig", 4),
         Column("power", "power", "fixed", 3), Column("MC se", "power_mc_se", "fixed", 3),
         Column("bias", "bias", "sig", 3), Column("bias MC se", "bias_mc_se", "sig", 2), Column("SD", "sd", "sig", 3),
@@ -167,7 +182,7 @@ def power_table(report: Report) -> Table:
 
 def size_coverage_table(report: Report) -> Table:
     columns = (
-        Column("units", "units", "int"), Column("treatment probability", "treatment_probability", "fixed", 2),
+        *_size_columns(report),
         Column("estimand", "estimand"), *_TEST_COLUMNS, Column("size", "size", "fixed", 3),
         Column("size MC se", "size_mc_se", "fixed", 3), Column("coverage", "coverage", "fixed", 3),
         Column("coverage MC se", "coverage_mc_se", "fixed", 3), Column("flags", "flags"),
@@ -184,7 +199,7 @@ def size_coverage_table(report: Report) -> Table:
 
 def mde_table(report: Report) -> Table:
     columns = (
-        Column("units", "units", "int"), Column("treatment probability", "treatment_probability", "fixed", 2),
+        *_size_columns(report),
         Column("estimand", "estimand"), *_TEST_COLUMNS, Column("MDE", "mde", "sig", 4),
         Column("95% MC low", "mde_low", "sig", 4), Column("95% MC high", "mde_high", "sig", 4),
         Column("MDE (SD units)", "mde_sd_units", "sig", 3), Column("SE", "standard_error", "sig", 3),
@@ -201,8 +216,8 @@ def mde_table(report: Report) -> Table:
 
 def sample_size_table(report: Report) -> Table:
     columns = (
-        Column("treatment probability", "treatment_probability", "fixed", 2), Column("estimand", "estimand"), *_TEST_COLUMNS,
-        Column("status", "status"), Column("required units", "required_units", "int"),
+        _size_columns(report)[-1], Column("estimand", "estimand"), *_TEST_COLUMNS,
+        Column("status", "status"), Column(f"required {_counted(report)}", "required_units", "int"),
         Column("95% MC low", "units_low", "int"), Column("95% MC high", "units_high", "int"),
         Column("verified power", "verified_power", "fixed", 3), Column("MC se", "verified_power_mc_se", "fixed", 3),
         Column("size", "size", "fixed", 3), Column("size MC se", "size_mc_se", "fixed", 3), Column("reason", "reason"),
@@ -210,30 +225,34 @@ def sample_size_table(report: Report) -> Table:
     rows = _record_rows(columns, report.size.records)
     return Table(
         "sample-size", "Required sample size",
-        "Units needed for the target power, found by simulation and verified at the answer (power and test size there).",
+        f"{_counted(report).capitalize()} needed for the target power, found by simulation and verified at the answer (power and test size there).",
         columns, rows,
     )
 
 
 def probability_table(report: Report) -> Table:
     columns = (
-        Column("units", "units", "int"), Column("treatment probability", "treatment_probability", "fixed", 2),
+        *_size_columns(report),
         Column("estimand", "estimand"), *_TEST_COLUMNS, Column("MDE", "mde", "sig", 4),
         Column("95% MC low", "mde_low", "sig", 4), Column("95% MC high", "mde_high", "sig", 4),
         Column("best", "best"), Column("tied with best", "tied_with_best"),
     )
     rows = _record_rows(columns, report.compare.rows)
-    return Table(
-        "treatment-probabilities", "Minimum detectable effect against treatment probability",
+    caption = (
         "Formula MDE (multiplier x simulated null SD) at one size for a grid of treatment probabilities; "
-        "tied: within two combined Monte Carlo SEs of the best.",
-        columns, rows,
+        "tied: within two combined Monte Carlo SEs of the best."
     )
+    if report.scenario.design.saturation is not None:
+        caption = (
+            "Not computed: a clustered design's arms (pure-control share and saturations) set who is treated, so there is no "
+            "treatment probability to vary; `designcalc compare --design OTHER.toml` puts whole designs side by side."
+        )
+    return Table("treatment-probabilities", "Minimum detectable effect against treatment probability", caption, columns, rows)
 
 
 def density_table(report: Report) -> Table:
     columns = (
-        Column("units", "units", "int"), Column("rho_n", "rho", "sig", 3), Column("target mean degree", "target_mean_degree", "sig", 3),
+        Column("units per cluster" if report.scenario.population.clustered else "units", "units", "int"), Column("rho_n", "rho", "sig", 3), Column("target mean degree", "target_mean_degree", "sig", 3),
         Column("expected mean degree", "expected_mean_degree", "sig", 3), Column("one draw", "realised_mean_degree", "sig", 3),
         Column("share isolated (expected)", "expected_share_isolated", "sig", 3),
         Column("largest edge probability", "max_edge_probability", "sig", 3),
@@ -254,11 +273,11 @@ def multiple_testing_tables(report: Report) -> list[Table]:
         Column("estimand", "estimand"), *_TEST_COLUMNS, Column("treatment probability", "treatment_probability", "fixed", 2),
         Column("per-test α", "per_test_alpha", "sig", 4), Column("MDE factor", "mde_factor", "fixed", 4),
         Column("classical n factor", "classical_factor", "fixed", 4), Column("SD slope", "sd_slope", "fixed", 2),
-        Column("n factor", "sample_size_factor", "fixed", 3), Column("required units", "required_units", "int"),
-        Column("units at adjusted α", "adjusted_units", "int"), Column("status", "status"),
+        Column("n factor", "sample_size_factor", "fixed", 3), Column(f"required {_counted(report)}", "required_units", "int"),
+        Column(f"{_counted(report)} at adjusted α", "adjusted_units", "int"), Column("status", "status"),
     )
     power_columns = (
-        Column("units", "units", "int"), Column("treatment probability", "treatment_probability", "fixed", 2),
+        *_size_columns(report),
         Column("estimand", "estimand"), *_TEST_COLUMNS, Column("power", "power", "fixed", 3),
         Column("MC se", "power_mc_se", "fixed", 3), Column("Bonferroni", "bonferroni_power", "fixed", 3),
         Column("MC se", "bonferroni_power_mc_se", "fixed", 3), Column("Holm", "holm_power", "fixed", 3),
