@@ -214,10 +214,30 @@ def null_label(estimand: str) -> str:
     return f"null:{estimand}"
 
 
+def effect_coefficients(scenario: Scenario, estimand: str) -> str:
+    """Whose coefficients a test of ``estimand`` zeroes for its null and rescales for an MDE (``OutcomeModel.null_for``).
+
+    Under complete randomization inside clusters a treated unit's neighbours
+    are treated at rate (k - 1)/(m - 1), an untreated one's at k/(m - 1), so
+    the within-saturation direct contrast differs from zero by a spillover
+    gap even with no direct effect: its null and its scaling take every
+    effect ("total"), which makes its truth zero and linear in the scale.
+    """
+    design = scenario.design.saturation
+    if estimand == "direct" and design is not None and design.within == "complete":
+        return "total"
+    return estimand
+
+
+def null_model(scenario: Scenario, estimand: str) -> OutcomeModel:
+    """The scenario's outcome model under the null of ``estimand`` (see ``effect_coefficients``)."""
+    return scenario.outcome.null_for(effect_coefficients(scenario, estimand))
+
+
 def power_runs(scenario: Scenario) -> list[Run]:
     """The scenario's model plus the null of each estimand (the power table's runs)."""
     model = scenario.outcome
-    return [Run(ALTERNATIVE, model, ESTIMANDS)] + [Run(null_label(e), model.null_for(e), (e,)) for e in ESTIMANDS]
+    return [Run(ALTERNATIVE, model, ESTIMANDS)] + [Run(null_label(e), null_model(scenario, e), (e,)) for e in ESTIMANDS]
 
 
 def _available_variances(scenario: Scenario, units: int) -> list[str]:
@@ -311,7 +331,8 @@ def test_reference(scenario: Scenario, point: DesignPoint, key: tuple[str, str, 
     if design.saturation is not None and saturation.is_contrast(key[1]):
         if design.reference_distribution == "normal":
             return ReferenceDistribution()
-        return ReferenceDistribution(saturation.contrast_df(design.saturation, point.clusters, key[1]))
+        size = point.cluster_size or scenario.population.cluster_sizes.nominal
+        return ReferenceDistribution(saturation.contrast_df(design.saturation, point.clusters, key[1], scenario.outcome.cluster_icc, size))
     return reference_distribution(design.reference_distribution, key[0], key[1], point.units, scenario.n_covariates)
 
 

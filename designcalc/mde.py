@@ -41,6 +41,8 @@ import scipy.stats
 
 from designcalc.engine import (
     contrast_truths,
+    effect_coefficients,
+    null_model,
     test_reference,
     ESTIMANDS,
     DesignPoint,
@@ -200,7 +202,7 @@ def _factor_for(track: _Track, target: float, draws: Sequence[GraphDraws], pi: f
     estimand = track.key[0]
 
     def effect(c: float) -> float:
-        return track.direction * _mean_effect(draws, track.base.scaled_for(estimand, c), track.key, pi, scenario)
+        return track.direction * _mean_effect(draws, track.base.scaled_for(effect_coefficients(scenario, estimand), c), track.key, pi, scenario)
 
     high = target / track.base_effect
     for _ in range(40):
@@ -433,7 +435,7 @@ def _design_point(
         return source.simulate(point, runs, indices, binary)
 
     # 1. Null pass (the scenario's model rides along: its estimands give each direction).
-    null_runs = [Run(null_label(e), scenario.outcome.null_for(e), (e,)) for e in ESTIMANDS]
+    null_runs = [Run(null_label(e), null_model(scenario, e), (e,)) for e in ESTIMANDS]
     direction_runs = [
         Run(f"direction:{e}", effect_direction_model(scenario.outcome, e), (e,), frozenset()) for e in ESTIMANDS
     ]
@@ -485,7 +487,7 @@ def _design_point(
         active = [t for t in active if not t.done]
         graphs_now = G
         while active:
-            runs = [Run(t.label, t.base.scaled_for(t.key[0], t.factor), (t.key[0],), frozenset({t.key})) for t in active]
+            runs = [Run(t.label, t.base.scaled_for(effect_coefficients(scenario, t.key[0]), t.factor), (t.key[0],), frozenset({t.key})) for t in active]
             new = simulate(runs, range(graphs_now))
             for t in active:
                 draws_by_track[t.label] = new
@@ -558,7 +560,7 @@ def _design_point(
                 while stop < end and needing(stop) == members:
                     stop += 1
                 if members:
-                    runs = [Run(t.label, t.base.scaled_for(t.key[0], t.factor), (t.key[0],), frozenset({t.key})) for t in members]
+                    runs = [Run(t.label, t.base.scaled_for(effect_coefficients(scenario, t.key[0]), t.factor), (t.key[0],), frozenset({t.key})) for t in members]
                     extra = simulate(runs, range(g, stop))
                     for t in members:
                         draws_by_track[t.label] = draws_by_track[t.label] + extra

@@ -58,6 +58,7 @@ from designcalc.engine import (
     Run,
     clustered_point,
     null_label,
+    null_model,
     planned_keys,
     test_reference,
 )
@@ -105,7 +106,7 @@ class SizeAxis:
             return max(c, 4)
         if self.name == "cluster_size":
             m = 4
-            while scenario.density.target_mean_degree(m) >= m - 1:
+            while m < 100_000 and not self.allowed(scenario, m):
                 m += 1
             return m
         return max(8, math.ceil(4 / min(pi, 1 - pi)))
@@ -113,6 +114,13 @@ class SizeAxis:
     def allowed(self, scenario: Scenario, n: int) -> bool:
         """Whether the density rule can be met at this size (a unit links to at most m - 1 others)."""
         m = n if self.name == "units" else (n if self.name == "cluster_size" else scenario.population.cluster_sizes.smallest)
+        if self.name == "cluster_size" and scenario.design.saturation is not None:
+            from designcalc.saturation import check_cluster_sizes
+
+            try:
+                check_cluster_sizes(scenario.design.saturation, m, m)
+            except DesignCalcError:
+                return False  # a saturation would treat nobody (or everybody) in clusters this small
         return scenario.density.target_mean_degree(m) < m - 1
 
     def adjacency_entries(self, scenario: Scenario, n: int) -> float:
@@ -255,7 +263,7 @@ class _Sizes:
     def null_size(self, n: int, key: tuple[str, str, str], graphs: int) -> tuple[float, float]:
         """Rejection rate (and MC se) of the test under the null of its estimand at n, on the same graphs and assignments."""
         label = null_label(key[0])
-        run = [Run(label, self.scenario.outcome.null_for(key[0]), (key[0],), frozenset({key}))]
+        run = [Run(label, null_model(self.scenario, key[0]), (key[0],), frozenset({key}))]
         point = self.point(n)
         draws = []
         tasks = [(point, g) for g in range(graphs)]
@@ -511,7 +519,7 @@ def _closed_form(scenario: Scenario, axis: SizeAxis, record: SizeRecord) -> tupl
     assumptions = "closed form of METHODS.md §5.2 (no network, equal clusters, normal approximation)"
     if axis.name == "clusters":
         answer = cluster_formulas.required_clusters(
-            effect, m, icc, design.pure_control_share, p, design.shares[j], {"dir": "dir"}.get(kind, kind),
+            effect, m, icc, design.pure_control_share, p, design.shares[j], kind,
             alpha=d.significance_level, power=d.target_power, sigma=sigma, alternative=d.alternative,
         )
         return float(answer.clusters), f"{assumptions}: {answer.clusters:.1f} clusters"

@@ -2,8 +2,8 @@
 
 Stage 1 allocates clusters to arms: a share ``pure_control_share`` of
 clusters treats nobody, and each saturation p_j gets its share f_j of the
-clusters.  The counts per arm are fixed (largest-remainder rounding of the
-shares times the number of clusters) and which clusters get which arm is a
+clusters.  The counts per arm are fixed (Webster's divisor method rounding
+of the shares times the number of clusters, ``arm_counts``) and which clusters get which arm is a
 uniformly random permutation, drawn afresh for every assignment.  Stage 2
 treats units inside each cluster: exactly k_c = floor(p m_c + 1/2) of its m_c
 units (complete randomization, the default) or each unit with probability p
@@ -28,13 +28,14 @@ is zero when the spillover effect is, an ITT or TCE when both effects are.
 Standard errors are cluster-robust: a contrast sum_a a_cell * mean_cell has
 cluster contributions psi_c = sum_a a_cell * (S_cell,c - N_cell,c mean_cell) / N_cell
 (S and N the cell's outcome sum and count in cluster c), and
-V = G / (G - 1) * sum_c psi_c^2 over the G clusters involved (the CR1 small-sample
-factor, common practice).  The slopes use HC1 on the cluster means, the
-same estimator at the cluster level.  Wald tests refer to Student t with
-G - q degrees of freedom, q the number of arms compared (2 for a contrast
-with pure control, 1 for ``dir@p``, 2 for a slope's intercept and slope):
-common practice for cluster-level tests (Donner & Klar 2000 use 2k - 2 for
-k clusters per arm; that this generalises is our reading, not theirs).
+V = sum_g G_g / (G_g - 1) * sum_{c in g} psi_c^2, one small-sample factor per
+group of clusters compared (an arm, pure control; the CR2 correction for
+cell means of equal clusters).  The slopes use HC2 on the cluster means.
+Wald tests refer to Student t: an arm against pure control with the
+Welch-Satterthwaite df of its two variance parts at their expected sizes
+(``contrast_df``), ``dir@p`` with G - 1, a slope with G - 2.  Every arm
+needs ``MIN_CLUSTERS_PER_ARM`` clusters: with two in an arm no such test
+held its size in simulation.
 
 Truths are exact on each simulated graph: given own treatment, a unit's
 treated neighbours are hypergeometric (complete randomization: k_c - 1 or
@@ -118,26 +119,55 @@ class SaturationDesign:
         return f"randomized saturation: {self.pure_control_share:.0%} pure control; saturations {arms} of clusters; {within} treated inside a cluster"
 
 
+#: Clusters every arm needs: with two, no cluster-robust test holds its size (a simulation gave 0.10-0.22 at 0.05).
+MIN_CLUSTERS_PER_ARM = 3
+
+
 def arm_counts(design: SaturationDesign, clusters: int) -> np.ndarray:
-    """Clusters per arm (pure control first) by largest-remainder rounding of the shares."""
+    """Clusters per arm (pure control first): the shares rounded by Webster's (Sainte-Lague) divisor method.
+
+    Clusters are handed out one at a time to the arm with the largest
+    share / (count + 1/2), so a study with more clusters never has fewer
+    in any arm (largest-remainder rounding can take one away) and whole
+    quotas (share x clusters) are met exactly.
+    """
     shares = np.array((design.pure_control_share,) + design.shares)
-    exact = shares * clusters
-    counts = np.floor(exact).astype(np.int64)
-    short = clusters - int(counts.sum())
-    order = np.argsort(-(exact - counts), kind="stable")
-    counts[order[:short]] += 1
+    counts = np.zeros(len(shares), dtype=np.int64)
+    for _ in range(int(clusters)):
+        counts[int(np.argmax(shares / (counts + 0.5)))] += 1  # argmax: ties go to the first arm, deterministically
     return counts
 
 
 def check_clusters(design: SaturationDesign, clusters: int) -> None:
-    """Every arm needs two clusters for a cluster-robust standard error."""
+    """Every arm needs ``MIN_CLUSTERS_PER_ARM`` clusters for a cluster-robust test that holds its size."""
     counts = arm_counts(design, clusters)
-    if counts.min() < 2:
+    if counts.min() < MIN_CLUSTERS_PER_ARM:
         labels = ["pure control"] + [f"saturation {p:g}" for p in design.saturations]
         worst = labels[int(np.argmin(counts))]
         raise DesignCalcError(
-            f"{clusters} clusters give {worst} {int(counts.min())} cluster(s); every arm needs at least 2 for a cluster-robust standard error"
+            f"{clusters} clusters give {worst} {int(counts.min())} cluster(s); every arm needs at least {MIN_CLUSTERS_PER_ARM} "
+            "for a cluster-robust test that holds its size"
         )
+
+
+def check_cluster_sizes(design: SaturationDesign, smallest: int, largest: int) -> None:
+    """Every partial saturation must treat at least one and leave at least one unit untreated in every cluster size.
+
+    A cluster where floor(p m + 1/2) is 0 or m has no treated (untreated)
+    cell, so it drops out of that contrast and its slope; the truths assume
+    every cluster takes part.
+    """
+    for p in design.saturations:
+        if p >= 1.0:
+            continue
+        for m in range(int(smallest), int(largest) + 1):
+            k = int(np.floor(p * m + 0.5))
+            if not 1 <= k <= m - 1:
+                what = "treats nobody" if k < 1 else "treats everybody"
+                raise DesignCalcError(
+                    f"saturation {p:g} {what} in a cluster of {m} units (floor(p m + 1/2) = {k}); "
+                    f"every cluster size from {smallest} to {largest} must have treated and untreated units"
+                )
 
 
 def treated_counts(sizes: np.ndarray, saturation: float) -> np.ndarray:
@@ -188,7 +218,9 @@ def contrast_names(design: SaturationDesign) -> list[str]:
         names.append("itt_pooled")
         if partial:
             names.append("snt_pooled")
-    if "slope" in design.contrasts:
+    # Under Bernoulli assignment within clusters a cluster's treated count is random, and the cluster means a slope
+    # averages weight it unlike the unit-level expectations of the truth (an O(1/m) gap): no slopes there.
+    if "slope" in design.contrasts and design.within == "complete":
         if len(design.saturations) > 1:
             names.append("itt_slope")
         if len(partial) > 1:
@@ -220,20 +252,44 @@ def _saturation_of(design: SaturationDesign, name: str) -> int:
     return 1 + min(range(len(design.saturations)), key=lambda j: abs(design.saturations[j] - p))
 
 
-def contrast_df(design: SaturationDesign, clusters: int, name: str) -> int:
-    """Degrees of freedom of a contrast's t test: clusters involved minus arms compared (module docstring)."""
+def contrast_df(design: SaturationDesign, clusters: int, name: str, icc: float = 0.0, cluster_size: float = 1.0) -> float:
+    """Degrees of freedom of a contrast's t test (module docstring).
+
+    A contrast of two disjoint groups of clusters (an arm against pure
+    control) gets the Welch-Satterthwaite df (Satterthwaite 1946) of its
+    two cluster-robust variance parts, evaluated at their expected sizes
+    under the random-effects model of METHODS.md §5.2 (ICC ``icc``,
+    clusters of ``cluster_size``): V_a = (rho + (1 - rho)/(m s_a)) / G_a
+    with s_a the share of a cluster's units in the cell, df =
+    (sum V_a)^2 / sum V_a^2 / (G_a - 1).  It lies between the smaller
+    group's G_a - 1 and G - 2, and is fixed by the design, so every
+    replicate uses one critical value.  The within-saturation direct
+    contrast has G - 1 (one group), a slope G - 2.
+    """
     counts = arm_counts(design, clusters)
     partial = [j + 1 for j, p in enumerate(design.saturations) if p < 1.0]
-    if name in ("itt_pooled", "snt_pooled"):
-        arms = range(1, len(counts)) if name == "itt_pooled" else partial
-        return int(counts[0] + sum(counts[j] for j in arms) - 2)
     if name.endswith("_slope"):
         arms = range(1, len(counts)) if name == "itt_slope" else partial
-        return int(sum(counts[j] for j in arms) - 2)
+        return float(sum(counts[j] for j in arms) - 2)
+    if name in ("itt_pooled", "snt_pooled"):
+        arms = list(range(1, len(counts))) if name == "itt_pooled" else partial
+        groups = int(sum(counts[j] for j in arms))
+        mean_p = sum(counts[j] * design.saturations[j - 1] for j in arms) / groups
+        share = mean_p if name == "itt_pooled" else 1.0 - mean_p
+        return _welch_df([(groups, share), (int(counts[0]), 1.0)], icc, cluster_size)
     j = _saturation_of(design, name)
     if name.startswith("dir@"):
-        return int(counts[j] - 1)
-    return int(counts[0] + counts[j] - 2)
+        return float(counts[j] - 1)
+    p = design.saturations[j - 1]
+    share = {"itt": p, "snt": 1.0 - p, "tce": 1.0}[name.split("@")[0]]
+    return _welch_df([(int(counts[j]), share), (int(counts[0]), 1.0)], icc, cluster_size)
+
+
+def _welch_df(groups: list[tuple[int, float]], icc: float, cluster_size: float) -> float:
+    """Satterthwaite df of a sum of independent group variances V_a = (rho + (1 - rho)/(m s_a)) / G_a."""
+    parts = [((icc + (1.0 - icc) / max(cluster_size * share, 1.0)) / g, g) for g, share in groups]
+    total = sum(v for v, _ in parts)
+    return float(total**2 / sum(v**2 / (g - 1) for v, g in parts))
 
 
 def describe_contrast(name: str) -> str:
@@ -284,31 +340,45 @@ def _cluster_sums(W: np.ndarray, Y: np.ndarray, sizes: np.ndarray) -> _Sums:
     return _Sums(s_t, n_t, s_all - s_t, n_all - n_t)
 
 
-def _contrast(terms: list[tuple[float, np.ndarray, np.ndarray]]) -> tuple[np.ndarray, np.ndarray]:
-    """Estimate and CR1 standard error of sum_a coef * cell mean (module docstring).
+def _contrast(terms: list[tuple[float, np.ndarray, np.ndarray]], groups: tuple[int, ...] | None = None) -> tuple[np.ndarray, np.ndarray]:
+    """Estimate and cluster-robust standard error of sum_a coef * cell mean (module docstring).
 
     Each term is (coefficient, S, N) with S and N (clusters, columns) already
-    zero outside the cell's clusters.
+    zero outside the cell's clusters.  ``groups`` labels the terms whose
+    cells lie in one set of clusters (default: one set for all); each set
+    gets its own small-sample factor G_g / (G_g - 1), which for cell means
+    of equal clusters is the CR2 correction (with one factor for the pooled
+    G a small arm's variance was underestimated by up to 40%).
     """
+    groups = groups if groups is not None else (0,) * len(terms)
     estimate = 0.0
-    psi = 0.0
-    involved = 0.0
+    psi: dict[int, object] = {}
+    involved: dict[int, object] = {}
     with np.errstate(invalid="ignore", divide="ignore"):
-        for coef, S, N in terms:
+        for (coef, S, N), g in zip(terms, groups):
             total = N.sum(axis=0)
             mean = S.sum(axis=0) / total
             estimate = estimate + coef * mean
-            psi = psi + coef * (S - N * mean) / total
-            involved = involved + (N > 0)
-        G = (np.asarray(involved) > 0).sum(axis=0)
-        variance = G / (G - 1.0) * (np.asarray(psi) ** 2).sum(axis=0)
+            psi[g] = psi.get(g, 0.0) + coef * (S - N * mean) / total
+            involved[g] = involved.get(g, 0.0) + (N > 0)
+        variance = 0.0
+        smallest = None
+        for g in psi:
+            G = (np.asarray(involved[g]) > 0).sum(axis=0)
+            variance = variance + G / (G - 1.0) * (np.asarray(psi[g]) ** 2).sum(axis=0)
+            smallest = G if smallest is None else np.minimum(smallest, G)
         empty = ~np.all([np.asarray(N).sum(axis=0) > 0 for _, _, N in terms], axis=0)
-    estimate = np.where(empty | (G < 2), np.nan, estimate)
-    return estimate, np.sqrt(np.where(empty | (G < 2), np.nan, variance))
+    bad = empty | (smallest < 2)
+    return np.where(bad, np.nan, estimate), np.sqrt(np.where(bad, np.nan, variance))
 
 
 def _slope(means: np.ndarray, p: np.ndarray, ok: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """OLS slope of cluster means on saturation with an HC1 standard error, per column."""
+    """OLS slope of cluster means on saturation with an HC2 standard error, per column.
+
+    HC2 (MacKinnon & White 1985) divides each squared residual by 1 - h_c,
+    h_c = 1/G + (p_c - pbar)^2 / Sxx, the leverage; HC1 over-rejected with
+    few clusters at the extreme saturations.
+    """
     B = means.shape[1]
     est, se = np.full(B, np.nan), np.full(B, np.nan)
     for b in range(B):
@@ -320,8 +390,9 @@ def _slope(means: np.ndarray, p: np.ndarray, ok: np.ndarray) -> tuple[np.ndarray
         sxx = float(xc @ xc)
         beta = float(xc @ (m - m.mean())) / sxx
         resid = m - m.mean() - beta * xc
+        leverage = 1.0 / G + xc**2 / sxx
         est[b] = beta
-        se[b] = np.sqrt(G / (G - 2.0) * float((xc**2) @ (resid**2))) / sxx
+        se[b] = np.sqrt(float((xc**2) @ (resid**2 / (1.0 - leverage)))) / sxx
     return est, se
 
 
@@ -351,7 +422,7 @@ def estimate_contrasts(
         if name in ("itt_pooled", "snt_pooled"):
             mask = treated_arm if name == "itt_pooled" else partial_arm
             which = "treated" if name == "itt_pooled" else "untreated"
-            out[name] = _contrast([(1.0, *cell(which, mask)), (-1.0, *cell("all", control))])
+            out[name] = _contrast([(1.0, *cell(which, mask)), (-1.0, *cell("all", control))], (0, 1))
             continue
         kind = name.split("@")[0]
         here = arms == _saturation_of(design, name)
@@ -359,7 +430,7 @@ def estimate_contrasts(
             out[name] = _contrast([(1.0, *cell("treated", here)), (-1.0, *cell("untreated", here))])
         else:
             which = {"itt": "treated", "snt": "untreated", "tce": "all"}[kind]
-            out[name] = _contrast([(1.0, *cell(which, here)), (-1.0, *cell("all", control))])
+            out[name] = _contrast([(1.0, *cell(which, here)), (-1.0, *cell("all", control))], (0, 1))
     return out
 
 

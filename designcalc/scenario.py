@@ -31,7 +31,15 @@ from designcalc.edge_models import KERNEL_FAMILIES, BlockModel, EdgeModel, Kerne
 from designcalc.errors import DesignCalcError, ScenarioError
 from designcalc.measurement import CAP_RULES, SYMMETRISE_RULES, MeasurementModel
 from designcalc.outcomes import SPILLOVER_SHAPES, OutcomeModel
-from designcalc.saturation import CONTRAST_KINDS, DEFAULT_CONTRASTS, WITHIN_RULES, SaturationDesign, check_clusters, contrast_names
+from designcalc.saturation import (
+    CONTRAST_KINDS,
+    DEFAULT_CONTRASTS,
+    WITHIN_RULES,
+    SaturationDesign,
+    check_cluster_sizes,
+    check_clusters,
+    contrast_names,
+)
 from designcalc.surveyed import TYPE_RULES, SurveyedNetwork, load_surveyed_network
 
 __all__ = [
@@ -695,6 +703,15 @@ def _read_design(top: _Table, population: Population) -> Design:
                 check_clusters(saturation, c)
             except DesignCalcError as exc:
                 raise ScenarioError(str(exc), file=t.file, key="population.clusters", received=c, hint="plan more clusters, or give the small arms larger shares") from None
+        sizes = population.cluster_sizes
+        try:
+            if sizes.kind == "list":
+                for m in sorted(set(sizes.sizes)):
+                    check_cluster_sizes(saturation, m, m)
+            else:
+                check_cluster_sizes(saturation, sizes.smallest, sizes.largest)
+        except DesignCalcError as exc:
+            raise ScenarioError(str(exc), file=t.file, key="design.saturations", received=list(saturation.saturations), hint="raise the smallest cluster size (population.cluster_size), or move the saturation away from 0 and 1") from None
     return Design(tuple(sorted(probs)), alpha, power, alternative, reference, saturation)
 
 
@@ -795,17 +812,24 @@ def _read_estimators(top: _Table, outcome: OutcomeModel, has_covariates: bool, d
 def _read_contrasts(t: _Table | None, design: SaturationDesign) -> EstimatorPlan:
     """A clustered design's tests are its contrasts (``designcalc.saturation``); the network estimators do not apply."""
     if t is None:
-        return EstimatorPlan(direct=(), direct_variance=(), spillover=(), contrasts=design.contrasts)
+        contrasts = design.contrasts if design.within == "complete" else tuple(c for c in design.contrasts if c != "slope")
+        return EstimatorPlan(direct=(), direct_variance=(), spillover=(), contrasts=contrasts)
     for name in ("direct", "direct_variance", "spillover", "centre", "eigenvectors"):
         if t.has(name):
             raise t.error(
                 name, "applies to Bernoulli assignment; a clustered design is analysed by its contrasts",
                 allowed="contrasts = a list drawn from " + ", ".join(f'"{c}"' for c in CONTRAST_KINDS), hint="remove it",
             )
+    default = DEFAULT_CONTRASTS if design.within == "complete" else tuple(c for c in DEFAULT_CONTRASTS if c != "slope")
     if design.is_cluster_randomized:
         contrasts = t.choice_list("contrasts", ("itt",), ("itt",))
     else:
-        contrasts = t.choice_list("contrasts", CONTRAST_KINDS, DEFAULT_CONTRASTS)
+        contrasts = t.choice_list("contrasts", CONTRAST_KINDS, default)
+    if "slope" in contrasts and design.within == "bernoulli":
+        raise t.error(
+            "contrasts", 'lists "slope", which needs within = "complete": with Bernoulli assignment inside clusters '
+            "the cluster means a slope averages are weighted by random treated counts", received=list(contrasts), hint='remove "slope", or use within = "complete"',
+        )
     if not contrast_names(replace(design, contrasts=contrasts)):
         raise t.error(
             "contrasts", "leave nothing to test with this design (pooled needs two saturations, a slope two below 1)",

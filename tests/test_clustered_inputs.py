@@ -162,17 +162,17 @@ def test_a_fixed_cluster_size_parses_to_equal_clusters() -> None:
 
 def test_a_list_of_cluster_sizes_fixes_the_number_of_clusters() -> None:
     """cluster_sizes = [...] without clusters: one cluster per size stated, nominal total their sum."""
-    s = _parse(population={"cluster_size": None, "clusters": None, "cluster_sizes": [10, 12, 14, 16]})
+    s = _parse(population={"cluster_size": None, "clusters": None, "cluster_sizes": [10, 12, 14, 16, 18, 20]})
     sizes = s.population.cluster_sizes
     assert sizes is not None
     assert sizes.kind == "list"
-    assert sizes.sizes == (10, 12, 14, 16)
-    assert s.population.clusters == (4,)
-    assert s.population.max_clusters == 4
-    assert s.population.units == (52,)
-    assert (sizes.smallest, sizes.largest, sizes.nominal) == (10, 16, 13.0)
+    assert sizes.sizes == (10, 12, 14, 16, 18, 20)
+    assert s.population.clusters == (6,)
+    assert s.population.max_clusters == 6
+    assert s.population.units == (90,)
+    assert (sizes.smallest, sizes.largest, sizes.nominal) == (10, 20, 15.0)
     # Stating the matching number of clusters too is allowed.
-    again = _parse(population={"cluster_size": None, "clusters": [4], "cluster_sizes": [10, 12, 14, 16]})
+    again = _parse(population={"cluster_size": None, "clusters": [6], "cluster_sizes": [10, 12, 14, 16, 18, 20]})
     assert again.population == s.population
 
 
@@ -210,7 +210,7 @@ def test_the_density_rule_must_fit_the_smallest_cluster() -> None:
     assert exc.key == "network.density.mean_degree"
     # Stated sizes: the smallest stated cluster decides.
     exc = _error(
-        population={"cluster_size": None, "clusters": None, "cluster_sizes": [20, 5, 30, 40]},
+        population={"cluster_size": None, "clusters": None, "cluster_sizes": [20, 5, 30, 40, 25, 35]},
         network={"density": {"mean_degree": 6.0, "reference_units": 40}},
     )
     assert exc.key == "network.density.mean_degree" and "cluster of 5 units" in exc.reason
@@ -311,12 +311,12 @@ def test_saturation_keys_are_errors_under_bernoulli(name: str) -> None:
     ],
     ids=["three-clusters", "small-control-share", "many-saturations"],
 )
-def test_every_arm_needs_two_clusters(clusters: list[int], design: dict[str, Any], phrase: str) -> None:
-    """Too few clusters for an arm is an error at population.clusters saying every arm needs 2."""
+def test_every_arm_needs_three_clusters(clusters: list[int], design: dict[str, Any], phrase: str) -> None:
+    """Too few clusters for an arm is an error at population.clusters saying every arm needs 3."""
     exc = _error(population={"clusters": clusters}, design=design)
     assert exc.key == "population.clusters"
     assert phrase in exc.reason
-    assert "every arm needs at least 2" in exc.reason
+    assert "every arm needs at least 3" in exc.reason
     assert exc.received == clusters[0]
 
 
@@ -329,7 +329,7 @@ def test_every_planned_number_of_clusters_is_checked() -> None:
 
 def test_a_cluster_randomized_design_treats_whole_clusters() -> None:
     """assignment = "cluster" is one saturation, 1.0, with the treated share of clusters; its only contrast is the ITT."""
-    s = _parse(design={"assignment": "cluster", "pure_control_share": None, "saturations": None, "treated_cluster_share": 0.25})
+    s = _parse(population={"clusters": [16]}, design={"assignment": "cluster", "pure_control_share": None, "saturations": None, "treated_cluster_share": 0.25})
     design = s.design.saturation
     assert design is not None
     assert design.saturations == (1.0,)
@@ -359,7 +359,7 @@ def test_saturation_shares_default_to_equal() -> None:
 def test_saturation_shares_follow_their_saturations_when_sorted() -> None:
     """Saturations listed out of order are sorted with their own shares."""
     s = _parse(
-        population={"clusters": [20]},
+        population={"clusters": [30]},
         design={"pure_control_share": 0.5, "saturations": [0.75, 0.25], "saturation_shares": [0.1, 0.4], "within": "bernoulli"},
     )
     design = s.design.saturation
@@ -480,10 +480,10 @@ def test_power_overrides_that_do_not_fit_the_population_are_user_errors() -> Non
     clustered = _parse()
     with pytest.raises(DesignCalcError, match="--clusters"):
         simulate_power(clustered, units=[100])
-    listed = _parse(population={"cluster_size": None, "clusters": None, "cluster_sizes": [10, 12, 14, 16]})
+    listed = _parse(population={"cluster_size": None, "clusters": None, "cluster_sizes": [10, 12, 14, 16, 18, 20]})
     with pytest.raises(DesignCalcError, match="fixes their number"):
         simulate_power(listed, clusters=[8])
-    with pytest.raises(DesignCalcError, match="every arm needs at least 2"):
+    with pytest.raises(DesignCalcError, match="every arm needs at least 3"):
         simulate_power(clustered, clusters=[3])
     single = _parse(SINGLE)
     with pytest.raises(DesignCalcError, match="--units"):
@@ -548,7 +548,7 @@ def test_check_rejects_a_bad_clustered_scenario_with_file_and_key(tmp_path: Path
     bad.write_text((ROOT / TARN).read_text().replace("clusters = [40, 60]", "clusters = [5, 60]"))
     stderr = _user_error("check", str(bad))
     assert "few_hamlets.toml: population.clusters" in stderr
-    assert "every arm needs at least 2" in stderr
+    assert "every arm needs at least 3" in stderr
 
 
 def test_check_keeps_the_bracketed_table_names_of_a_hint(tmp_path: Path) -> None:
@@ -565,7 +565,7 @@ def test_check_keeps_the_bracketed_table_names_of_a_hint(tmp_path: Path) -> None
 def test_size_with_too_few_clusters_per_cluster_search_is_a_user_error() -> None:
     """`size --per-cluster 2` leaves arms with fewer than 2 clusters: exit 2, no traceback."""
     stderr = _user_error("size", TARN, *TINY, "--per-cluster", "2")
-    assert "every arm needs at least 2" in stderr
+    assert "every arm needs at least 3" in stderr
     assert "--per-cluster 2: 2 clusters give" in stderr
 
 
@@ -602,7 +602,7 @@ def test_compare_designs_puts_both_designs_at_one_size() -> None:
 def test_compare_designs_at_too_few_clusters_is_a_user_error() -> None:
     """`compare --design` at 100 units puts Tarn Hollow at 2 hamlets: exit 2, every arm needs 2 clusters."""
     stderr = _user_error("compare", LAKE, "--design", TARN, "--units", "100", *TINY)
-    assert "every arm needs at least 2" in stderr
+    assert "every arm needs at least 3" in stderr
 
 
 def test_compare_a_saturation_design_without_design_is_a_user_error() -> None:
@@ -644,3 +644,17 @@ def test_a_normal_cluster_size_that_is_almost_never_in_range_is_refused_at_load(
     """Sizes are redrawn until in [low, high]; a spread that almost never lands there is refused when the file is read."""
     exc = _error(population={"clusters": [8], "cluster_size": {"mean": 50, "sd": 1e6, "low": 50, "high": 50}})
     assert exc.key == "population.cluster_size.sd" and "almost never drawn" in str(exc)
+
+
+def test_slopes_need_complete_randomization_and_saturations_need_treated_and_untreated_units() -> None:
+    """Slopes under Bernoulli-within are refused (explicitly) or left out (by default); a saturation that would treat
+    nobody or everybody in some cluster size is refused at design.saturations."""
+    exc = _error(population={"clusters": [12]}, design={"saturations": [0.25, 0.75], "within": "bernoulli"}, estimators={"contrasts": ["itt", "slope"]})
+    assert exc.key == "estimators.contrasts" and 'within = "complete"' in str(exc)
+    default = _parse(population={"clusters": [12]}, design={"saturations": [0.25, 0.75], "within": "bernoulli"})
+    assert "slope" not in default.design.saturation.contrasts and "itt_slope" not in [k[1] for k in __import__("designcalc").engine.planned_keys(default, 0)]
+    # 0.1 x 4 + 1/2 < 1: nobody treated in a cluster of 4 (the smallest size the uniform rule allows).
+    exc = _error(population={"clusters": [12], "cluster_size": {"low": 4, "high": 20}}, design={"saturations": [0.1, 0.5]})
+    assert exc.key == "design.saturations" and "treats nobody in a cluster of 4 units" in str(exc)
+    exc = _error(population={"clusters": [12], "cluster_size": 12}, design={"saturations": [0.5, 0.97]})
+    assert exc.key == "design.saturations" and "treats everybody" in str(exc)

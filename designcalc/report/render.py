@@ -92,7 +92,7 @@ def _reference_words(setting: str, clustered: bool = False) -> str:
     if setting == "normal":
         return "the normal for every test"
     if clustered:
-        return "t quantiles with degrees of freedom from the clusters compared (clusters involved minus arms compared)"
+        return "t quantiles with the Welch-Satterthwaite degrees of freedom of the clusters compared (G - 1 within a saturation, G - 2 for a slope)"
     return "t quantiles with n − 2 degrees of freedom for the direct-effect tests (fewer for regressions), the normal for the network spillover tests and the totals"
 
 
@@ -113,8 +113,9 @@ def _tests_in_words(report: Report) -> str:
     if report.scenario.design.saturation is not None:
         chosen = ", ".join(f"{k[0]}: {k[1]}" for k in report.tests)
         return (
-            "unit-weighted differences of cell means with cluster-robust (CR1) standard errors (slopes: OLS on cluster means, HC1), "
-            f"t tests with degrees of freedom from the clusters compared; the key answers use {chosen}."
+            "unit-weighted differences of cell means with cluster-robust standard errors, one small-sample factor per group of clusters "
+            "(slopes: OLS on cluster means, HC2), t tests with Welch-Satterthwaite degrees of freedom at the design; "
+            f"the key answers use {chosen}."
         )
     planned = f"direct: {', '.join(plan.direct)} with {', '.join(plan.direct_variance)} variance; spillover: {', '.join(plan.spillover)}"
     chosen = ", ".join(f"{k[0]}: {k[1]} / {k[2]}" for k in report.tests)
