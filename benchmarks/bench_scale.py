@@ -203,11 +203,11 @@ def report(results: list[dict[str, object]]) -> None:
     print("Above the floor, and why:")
     print(
         "* preparation: the k + 1 leading adjacency eigenpairs (ARPACK, tol 1e-2, single precision from "
-        "50,000 units) are not in the floor; each Lanczos step is one A @ x plus re-orthogonalisation, and "
-        "when eigenvalues near the noise edge pass the 2.1 sqrt(mean degree) rule the cap of 10 binds and about "
-        "150 products are needed: so on the demo model, whose blocks' expected degrees (22, 19, 17 at mean degree "
-        "20) put the noise edge near 2 sqrt(22) = 9.4, just at the threshold; the balanced model keeps k = 3. "
-        "It is the largest part at B = 1; at B = 25 it is spread over 25 replicates."
+        "50,000 units) are not in the floor; each Lanczos step is one A @ x plus re-orthogonalisation. "
+        "A block model uses k = K (METHODS.md §3.3), here 3 on both models; the eigenvalue rule (kernels, "
+        "surveyed networks) would take the demo model to its cap of 10, its blocks' expected degrees "
+        "(22, 19, 17 at mean degree 20) putting the noise edge near 2 sqrt(22) = 9.4, at the rule's threshold. "
+        "It is one of the largest parts at B = 1; at B = 25 it is spread over 25 replicates."
     )
     print(
         "* sampling: beyond the edge draws, the distinct-position top-up, sorting the drawn positions "

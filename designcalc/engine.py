@@ -47,6 +47,7 @@ from threadpoolctl import threadpool_limits
 from designcalc import saturation
 from designcalc.clusters import cluster_effect_sd, sample_clustered_network
 from designcalc.covariates import draw_covariates, latent_individual_scores
+from designcalc.edge_models import BlockModel
 from designcalc.estimands import Estimands, ExposureMoments, estimands_from_moments, exact_estimands, exposure_moments
 from designcalc.errors import DesignCalcError, ModelError
 from designcalc.estimators import (
@@ -540,6 +541,24 @@ def contrast_truths(
     return saturation.contrast_truths(model, design, names, degrees, theta, cluster_sizes, counts, cache)
 
 
+def eigenvector_count(scenario: Scenario, point: DesignPoint, units: int) -> int | None:
+    """How many adjacency eigenvectors the PC-balancing estimators project out (None: the eigenvalue rule).
+
+    ``eigenvectors = "auto"`` follows METHODS.md §3.3: K for a K-block model
+    (its expected adjacency has rank K), the eigenvalue rule otherwise
+    (kernels, surveyed networks, a clustered population's union of
+    networks).  A two-stage design's contrasts read no eigenvectors.
+    """
+    if scenario.design.saturation is not None:
+        return 0
+    stated = scenario.estimators.eigenvectors
+    if stated is not None:
+        return stated
+    if isinstance(scenario.network, BlockModel) and not point.clusters:
+        return min(scenario.network.n_blocks, max(units - 1, 0))
+    return None
+
+
 def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int, batch_size: int = 16) -> _PreparedGraph:
     entropy = scenario.simulation.seed
     n = point.units
@@ -554,8 +573,7 @@ def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int, batch_siz
     degrees = observed.degrees if observed is not None else net.degrees
     prep = prepare_graph(
         analysed,
-        # A clustered design's contrasts read no eigenvectors: skip the eigen-solver.
-        n_eigenvectors=0 if scenario.design.saturation is not None else scenario.estimators.eigenvectors,
+        n_eigenvectors=eigenvector_count(scenario, point, n),
         mean_degree_hint=float(degrees.mean()) if n else 0.0,
         two_hop="two_hop" in scenario.estimators.direct_variance and n <= TWO_HOP_MAX_UNITS,
         check_input=False,  # graphs.to_csr builds symmetric 0/1 canonical CSR by construction
