@@ -754,7 +754,7 @@ def max_power_with_clusters(
     *,
     sigma: float = 1.0,
 ) -> float:
-    """The power no cluster size can exceed with C clusters (single-saturation ITT/TCE, normal approximation).
+    """The power no cluster size can exceed with C clusters (single-saturation ITT, SNT or TCE, normal approximation).
 
     Parameters
     ----------

@@ -523,7 +523,7 @@ def _closed_form(scenario: Scenario, axis: SizeAxis, record: SizeRecord) -> tupl
             alpha=d.significance_level, power=d.target_power, sigma=sigma, alternative=d.alternative,
         )
         return float(answer.clusters), f"{assumptions}: {answer.clusters:.1f} clusters"
-    if kind in ("itt", "tce"):
+    if kind in ("itt", "tce", "snt"):  # as m grows each tends to rho sigma^2 (1/f + 1/psi) / C (METHODS.md §5.3)
         best = cluster_formulas.max_power_with_clusters(
             effect, axis.clusters, icc, design.pure_control_share, design.shares[j], d.significance_level, d.alternative, sigma=sigma,
         )
@@ -728,6 +728,11 @@ def _plateau_reason(scenario: Scenario, key: tuple[str, str, str], trend: Sequen
         )
     elif abs(s2.mean_estimate) < 0.5 * abs(s2.truth):
         why = f"bias dominates: the mean estimate {s2.mean_estimate:.4g} is far from the true effect {s2.truth:.4g} and does not approach it as n grows"
+    elif noun == "units per cluster":
+        why = (
+            f"the estimator's SD falls only slowly with cluster size (log-log slope {slope:+.2f} from {n0:,} to {n2:,} units per cluster): "
+            "differences between clusters set a floor that only more clusters lower"
+        )
     else:
         why = "the mean estimate shrinks nearly as fast as its SD"
     return (

@@ -450,3 +450,25 @@ def test_a_report_on_a_saturation_design_counts_clusters_and_explains_what_it_sk
     words = dict(design_in_words(report))
     assert words["Population"].startswith("14 clusters") and "pure control" in words["Design"]
     assert "--clusters 14" in reproduce_command(report)
+
+
+def test_a_search_over_cluster_sizes_states_the_large_cluster_limit():
+    # METHODS.md §5.3: as m grows, Var ITT(p) -> rho sigma^2 (1/f + 1/psi) / C, so C clusters cap the power whatever
+    # their size; the size search says so beside each saturation contrast, from cluster_formulas.max_power_with_clusters.
+    from dataclasses import replace as _replace
+
+    from designcalc.sample_size import SizeAxis, SizePoint, SizeRecord, _closed_form
+
+    s = _tarn()
+    point = SizePoint(40, 0.5, 0.02, 1.0, 1.0, 0.3, 0.3, 100)
+    record = SizeRecord("total", "itt@0.5", "cluster_robust", 0.3375, "reached", 40, 30, 50, 40, 0.8, 0.01, 0.1, "t(20)", -0.5, "", (point,))
+    value, note = _closed_form(s, SizeAxis("cluster_size", 20), record)
+    design = s.design.saturation
+    icc = s.outcome.cluster_icc
+    from designcalc.clusters import cluster_effect_sd, within_cluster_sd
+
+    sigma = math.hypot(within_cluster_sd(s.outcome, s.network), cluster_effect_sd(s.outcome, s.network, icc))
+    best = cluster_formulas.max_power_with_clusters(0.3, 20, icc, design.pure_control_share, design.shares[1], sigma=sigma)
+    assert math.isnan(value) and f"give power {best:.2f}" in note and best < 0.8 and note.endswith("add clusters instead")
+    snt = _closed_form(s, SizeAxis("cluster_size", 20), _replace(record, estimand="spillover", estimator="snt@0.5"))[1]
+    assert f"give power {best:.2f}" in snt  # the same limit for the untreated's contrast
