@@ -30,7 +30,13 @@ Random streams (layout version ``STREAM_LAYOUT_VERSION``) form a
 
 With a measurement model, outcomes and exact estimands use the true network
 and every estimator (exposures, eigenvectors, HT and PC weights, HAC
-dependency) the observed one (METHODS.md §7).
+dependency) the observed one (METHODS.md §7).  With outcome attrition the
+assignment key's fifth child draws which outcomes are missing, for every
+assignment, and the estimators analyse complete cases: Hajek's arms hold the
+observed units, and the HT-type estimators (direct HT, centred HT, the PC
+estimators), sums over outcome units, drop the missing units' terms and
+scale by n / (units observed).  The estimands stay those of the whole
+population, so attrition related to treatment shows as bias.
 
 So a result never depends on how work is split, on ``batch_size``, or on
 which estimators are planned.
@@ -358,12 +364,12 @@ def observed_network(scenario: Scenario, net: SampledNetwork, units: int, graph_
 
 def _assignment_streams(
     entropy: int, point: DesignPoint, graph_index: int
-) -> tuple[np.random.Generator, np.random.Generator, np.random.Generator, np.random.Generator]:
+):
     key = (point.units, int(round(point.treatment_probability * _PROBABILITY_KEY_SCALE)), graph_index)
     # The leading 0 / 1 keeps graph and assignment keys apart; the fourth child
     # (cluster effects) leaves the first three as spawn(3) made them.
-    children = np.random.SeedSequence(entropy, spawn_key=(1,) + key).spawn(4)
-    return tuple(np.random.default_rng(c) for c in children)  # assignment, noise, covariates, cluster effects
+    children = np.random.SeedSequence(entropy, spawn_key=(1,) + key).spawn(5)
+    return tuple(np.random.default_rng(c) for c in children)  # assignment, noise, covariates, cluster effects, attrition
 
 
 def sample_point_network(scenario: Scenario, point: DesignPoint, graph_index: int) -> SampledNetwork:
@@ -407,6 +413,7 @@ def _run_estimators(
     covariates: np.ndarray | None = None,
     exposure: Callable[[], np.ndarray] | None = None,
     ht_prep: GraphPreparation | None = None,
+    observed: np.ndarray | None = None,
 ) -> dict[tuple[str, str, str], EstimateBatch]:
     """The estimates of ``keys`` on one assignment batch; each estimator runs at most once.
 
@@ -418,7 +425,8 @@ def _run_estimators(
     fraction, computed once for every run and both exposure regressions.
     ``ht_prep`` (an augmented survey's inclusion-weighted network,
     ``measurement.inclusion_weights``) replaces ``prep`` in the centred HT
-    spillover estimator.
+    spillover estimator.  ``observed`` (``(n, B)`` bool) marks the outcomes
+    observed under attrition: complete cases (module docstring).
     """
     failures = {} if failures is None else failures
     if exposure is None:
@@ -427,14 +435,30 @@ def _run_estimators(
     plan = scenario.estimators
     cache: dict[tuple[str, str], EstimateBatch] = {}
 
+    def complete_cases(outcomes: np.ndarray, neutral: float) -> np.ndarray:
+        # A missing outcome becomes the value whose term vanishes from an HT-type sum (scaled back in ``rescaled``).
+        return outcomes if observed is None else np.where(observed, outcomes, neutral)
+
+    def rescaled(batch: EstimateBatch) -> EstimateBatch:
+        if observed is None:
+            return batch
+        with np.errstate(divide="ignore", invalid="ignore"):
+            scale = W.shape[0] / observed.sum(axis=0)
+        return replace(
+            batch, estimate=batch.estimate * scale, standard_error=batch.standard_error * scale,
+            contributions=batch.contributions * scale[None, :],
+        )
+
     def direct(name: str, variance: str) -> EstimateBatch:
         if (name, variance) not in cache:
             if name == "hajek":
-                cache[name, variance] = estimate_direct_hajek(prep, W, Y, treatment_probability=pi, variance=variance)
+                cache[name, variance] = estimate_direct_hajek(prep, W, Y, treatment_probability=pi, variance=variance, observed=observed)
             elif name == "lin":
                 cache[name, variance] = estimate_direct_lin(prep, W, Y, treatment_probability=pi, covariates=covariates)
             else:
-                cache[name, variance] = estimate_direct_ht(prep, W, Y, treatment_probability=pi, centre=plan.centre, variance=variance)
+                cache[name, variance] = rescaled(estimate_direct_ht(
+                    prep, W, complete_cases(Y, plan.centre), treatment_probability=pi, centre=plan.centre, variance=variance,
+                ))
         return cache[name, variance]
 
     def spillover(name: str) -> EstimateBatch:
@@ -465,11 +489,11 @@ def _run_estimators(
 
     def _unadjusted(name: str, outcomes: np.ndarray) -> EstimateBatch:
         if name == "centred_ht":
-            return estimate_spillover_ht(ht_prep or prep, W, outcomes, treatment_probability=pi, centre=plan.centre)
+            return rescaled(estimate_spillover_ht(ht_prep or prep, W, complete_cases(outcomes, plan.centre), treatment_probability=pi, centre=plan.centre))
         if name == "pc_balancing":
-            return estimate_spillover_pc(prep, W, outcomes, treatment_probability=pi)
+            return rescaled(estimate_spillover_pc(prep, W, complete_cases(outcomes, 0.0), treatment_probability=pi))
         if name == "pc_balancing_corrected":
-            return estimate_spillover_pc_corrected(prep, W, outcomes, treatment_probability=pi)
+            return rescaled(estimate_spillover_pc_corrected(prep, W, complete_cases(outcomes, 0.0), treatment_probability=pi))
         return estimate_spillover_exposure_regression(prep, W, outcomes, treatment_probability=pi, exposure=exposure())
 
     out: dict[tuple[str, str, str], EstimateBatch] = {}
@@ -516,6 +540,7 @@ class _PreparedGraph:
     arms_all: np.ndarray | None = None
     cluster_effects: np.ndarray | None = None
     contrast_cache: dict = field(default_factory=dict)  # saturation.contrast_truths' exposure expectations
+    observed_all: np.ndarray | None = None  # (n, B) bool: outcomes observed, under attrition
 
 
 def _estimands(g: _PreparedGraph, model: OutcomeModel, pi: float, scenario: Scenario | None = None) -> Estimands:
@@ -578,9 +603,15 @@ def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int, batch_siz
         two_hop="two_hop" in scenario.estimators.direct_variance and n <= TWO_HOP_MAX_UNITS,
         check_input=False,  # graphs.to_csr builds symmetric 0/1 canonical CSR by construction
     )
-    assign_rng, noise_rng, covariate_rng, cluster_rng = _assignment_streams(entropy, point, graph_index)
+    assign_rng, noise_rng, covariate_rng, cluster_rng, attrition_rng = _assignment_streams(entropy, point, graph_index)
     B = scenario.simulation.assignments_per_graph
     W_all, arms_all = draw_assignments(scenario, net, point, assign_rng)
+    observed_all = None
+    if scenario.measurement is not None and scenario.measurement.attrition:
+        # Who keeps an outcome: a uniform per unit and assignment against the missing rate of its own arm.
+        m = scenario.measurement
+        missing = np.where(W_all, m.attrition_treated, m.attrition_control)
+        observed_all = attrition_rng.random(W_all.shape) >= missing
     cluster_effects = None
     if point.clusters and scenario.outcome.cluster_icc > 0:
         sd = cluster_effect_sd(scenario.outcome, scenario.network, scenario.outcome.cluster_icc)
@@ -603,7 +634,7 @@ def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int, batch_siz
             ht_prep = replace(prep, adjacency=inclusion_weights(observed, scenario.measurement))
     return _PreparedGraph(
         net, theta, prep, W_all, noise_all, covariates_all, true_single=true_single, observed=observed, ht_prep=ht_prep,
-        arms_all=arms_all, cluster_effects=cluster_effects,
+        arms_all=arms_all, cluster_effects=cluster_effects, observed_all=observed_all,
     )
 
 
@@ -646,7 +677,7 @@ def _footprint(prepared: _PreparedGraph) -> int:
     prep = prepared.prep
     values = [getattr(prep, f) for f in getattr(prep, "__dataclass_fields__", {})]
     values += [prepared.covariates_all, prepared.W_all, prepared.noise_all, prepared.net.adjacency, prepared.theta, prepared.true_single]
-    values += [prepared.arms_all, prepared.cluster_effects]
+    values += [prepared.arms_all, prepared.cluster_effects, prepared.observed_all]
     if prepared.ht_prep is not None:
         values.append(prepared.ht_prep.adjacency)
     seen: dict[tuple[int, int], int] = {}
@@ -775,6 +806,7 @@ def _simulate_graph(
             X = counts / safe_degrees
         exposure: list[np.ndarray] = []
         arms = g.arms_all[:, start : start + batch_size] if g.arms_all is not None else None
+        seen = g.observed_all[:, start : start + batch_size] if g.observed_all is not None else None
         if g.cluster_effects is not None:
             # Every unit shares its cluster's effect (contiguous clusters, designcalc.clusters).
             shift = np.repeat(g.cluster_effects[:, start : start + batch_size], g.net.cluster_sizes, axis=0)
@@ -793,7 +825,7 @@ def _simulate_graph(
             if arms is not None:
                 batches = _run_contrasts(scenario, W, Y, g.net.cluster_sizes, arms, run_keys[run.label])
             else:
-                batches = _run_estimators(scenario, g.prep, W, Y, pi, run_keys[run.label], draws.failures, C, batch_exposure, g.ht_prep)
+                batches = _run_estimators(scenario, g.prep, W, Y, pi, run_keys[run.label], draws.failures, C, batch_exposure, g.ht_prep, seen)
             chunks[run.label].append(({k: v.estimate for k, v in batches.items()}, {k: v.standard_error for k, v in batches.items()}))
     for run in runs:
         if not run_keys[run.label]:

@@ -905,8 +905,15 @@ def estimate_direct_hajek(
     *,
     treatment_probability: float,
     variance: DirectVariance = "neyman",
+    observed: np.ndarray | None = None,
 ) -> EstimateBatch:
     """Hájek (difference-in-means) estimator of the direct effect.
+
+    ``observed`` (``(n, B)`` bool), when given, marks the units whose outcome
+    is observed: the arms' means and variances use those units only
+    (complete cases under outcome attrition), and the contributions are
+    scaled by n / (units observed) so that the estimate's error is still
+    their mean.
 
     Parameters
     ----------
@@ -950,9 +957,16 @@ def estimate_direct_hajek(
     treatments, outcomes, probability = _validate_batch(
         prep, W, Y, treatment_probability
     )
-    controls = 1.0 - treatments
+    if observed is not None:
+        # Complete cases: units whose outcome is missing are in neither arm.
+        seen = np.asarray(observed, dtype=float)
+        treatments = treatments * seen
+        controls = (1.0 - np.asarray(W, dtype=float)) * seen
+    else:
+        controls = 1.0 - treatments
     n_treated = _column_sums(treatments)
-    n_control = prep.n_units - n_treated
+    n_control = _column_sums(controls) if observed is not None else prep.n_units - n_treated
+    n_seen = n_treated + n_control
     valid = (n_treated >= 2) & (n_control >= 2)
     with np.errstate(divide="ignore", invalid="ignore"):
         mean_treated = _column_sums(treatments * outcomes) / n_treated
@@ -960,10 +974,13 @@ def estimate_direct_hajek(
         # Centre before squaring (two-pass) for accuracy with large levels.
         resid_treated = treatments * (outcomes - mean_treated)
         resid_control = controls * (outcomes - mean_control)
-        share_treated = n_treated / prep.n_units
+        share_treated = n_treated / n_seen
         contributions = resid_treated / share_treated - resid_control / (
             1.0 - share_treated
         )
+        if observed is not None:
+            # Scaled so that the estimate's error is (1/n) sum contributions, as for every estimator.
+            contributions = contributions * (prep.n_units / n_seen)
         if variance == "neyman":
             var = _column_sums(resid_treated**2) / (
                 (n_treated - 1.0) * n_treated
@@ -972,6 +989,8 @@ def estimate_direct_hajek(
             scores = resid_treated / probability - resid_control / (1.0 - probability)
             scores[:, ~valid] = 0.0
             var = _direct_variance(prep, scores, variance)
+            if observed is not None:
+                var = var * (prep.n_units / n_seen) ** 2
     estimate = np.where(valid, mean_treated - mean_control, np.nan)
     standard_error = np.where(valid, _safe_sqrt(var), np.nan)
     contributions[:, ~valid] = np.nan

@@ -65,6 +65,12 @@ class MeasurementModel:
         Expected number of false contacts named per respondent, ``>= 0``.
     augmented
         Respondents also report their total number of contacts.
+    attrition_treated, attrition_control
+        Probability that a treated (untreated) unit's outcome is never
+        observed, in ``[0, 1)``: equal for outcomes missing completely at
+        random, different for attrition related to treatment.  Drawn for
+        every assignment; the analysis then uses the observed outcomes only
+        (complete cases; ``engine`` module docstring).
     """
 
     contact_cap: int | None = None
@@ -74,6 +80,8 @@ class MeasurementModel:
     non_response: float = 0.0
     false_ties: float = 0.0
     augmented: bool = False
+    attrition_treated: float = 0.0
+    attrition_control: float = 0.0
 
     def __post_init__(self) -> None:
         if self.contact_cap is not None and (isinstance(self.contact_cap, bool) or int(self.contact_cap) != self.contact_cap or self.contact_cap < 1):
@@ -88,6 +96,14 @@ class MeasurementModel:
             raise ModelError(f"`non_response` must be a number in [0, 1); got {self.non_response!r}.")
         if not 0.0 <= self.false_ties <= 1000.0:
             raise ModelError(f"`false_ties` must be a number in [0, 1000]; got {self.false_ties!r}.")
+        for name in ("attrition_treated", "attrition_control"):
+            if not 0.0 <= getattr(self, name) < 1.0:
+                raise ModelError(f"`{name}` must be a number in [0, 1); got {getattr(self, name)!r}.")
+
+    @property
+    def attrition(self) -> bool:
+        """Whether some outcomes go unobserved."""
+        return self.attrition_treated > 0.0 or self.attrition_control > 0.0
 
     @property
     def perfect(self) -> bool:
@@ -105,6 +121,11 @@ class MeasurementModel:
             parts.append(f"{self.false_ties:g} false contacts per respondent")
         if self.augmented:
             parts.append("total contacts reported (augmented)")
+        if self.attrition:
+            if self.attrition_treated == self.attrition_control:
+                parts.append(f"{self.attrition_treated:.0%} of outcomes missing at random")
+            else:
+                parts.append(f"outcomes missing for {self.attrition_treated:.0%} of treated and {self.attrition_control:.0%} of untreated units")
         return "; ".join(parts)
 
 

@@ -385,7 +385,12 @@ def _range_text(low: float | None, high: float | None, low_open: bool, high_open
 # Section readers
 # ---------------------------------------------------------------------------
 _TOP_KEYS = ("scenario", "population", "network", "outcome", "covariates", "design", "estimators", "simulation", "execution", "measurement")
-_MEASUREMENT_KEYS = ("contact_cap", "cap_rule", "symmetrise", "tie_recall", "non_response", "false_ties", "augmented")
+_MEASUREMENT_KEYS = (
+    "contact_cap", "cap_rule", "symmetrise", "tie_recall", "non_response", "false_ties", "augmented",
+    "attrition", "attrition_treated", "attrition_control",
+)
+# Estimators that analyse complete cases when outcomes are missing (``engine._run_estimators``).
+_ATTRITION_ESTIMATORS = ("hajek", "horvitz_thompson", "centred_ht", "pc_balancing", "pc_balancing_corrected")
 _EXECUTION_KEYS = ("workers", "cluster", "store")
 _COVARIATE_KEYS = ("name", "r_squared", "through_type")
 _SCENARIO_KEYS = ("name", "description")
@@ -892,8 +897,15 @@ def _read_measurement(top: _Table) -> MeasurementModel | None:
         raise t.error("augmented", "must be true or false", allowed="true or false", received=augmented)
     if cap is None and t.has("cap_rule"):
         raise t.error("cap_rule", "chooses which contacts a capped respondent names, but no contact_cap is set", hint="add `contact_cap = ...` or remove cap_rule")
+    if t.has("attrition") and (t.has("attrition_treated") or t.has("attrition_control")):
+        raise t.error("attrition", "states outcomes missing at random; attrition_treated and attrition_control state it by treatment: give one form", hint="remove one of them")
+    if t.has("attrition"):
+        treated = control = t.number("attrition", low=0.0, high=1.0, high_open=True)
+    else:
+        treated = t.number("attrition_treated", 0.0, low=0.0, high=1.0, high_open=True)
+        control = t.number("attrition_control", 0.0, low=0.0, high=1.0, high_open=True)
     t.finish()
-    return MeasurementModel(cap, cap_rule, symmetrise, recall, non_response, false_ties, augmented)
+    return MeasurementModel(cap, cap_rule, symmetrise, recall, non_response, false_ties, augmented, treated, control)
 
 
 def parse_scenario(text: str, *, source: str = "<scenario>", folder: str | Path | None = None) -> Scenario:
@@ -951,7 +963,8 @@ def parse_scenario(text: str, *, source: str = "<scenario>", folder: str | Path 
             )
         if measurement is not None:
             raise ScenarioError(
-                "has no effect on a clustered design: its contrasts compare arms and never read the network",
+                "has no effect on a clustered design: its contrasts compare arms and never read the network"
+                " (outcome attrition is not modelled for them yet)",
                 file=source, key="measurement", hint="remove the [measurement] table, or use assignment = \"bernoulli\" to see what measurement does to the network estimators",
             )
     if population.clustered:
@@ -968,6 +981,14 @@ def parse_scenario(text: str, *, source: str = "<scenario>", folder: str | Path 
             raise ScenarioError(
                 f"at {n} units the density rule asks for mean degree {density.target_mean_degree(n):.4g}, but a unit can link to at most {n - 1} others",
                 file=source, key="network.density.mean_degree", hint="lower mean_degree or growth_exponent, or plan larger networks",
+            )
+    if measurement is not None and measurement.attrition:
+        unsupported = [n for n in (*estimators.direct, *estimators.spillover) if n not in _ATTRITION_ESTIMATORS]
+        if unsupported:
+            raise ScenarioError(
+                f"with outcome attrition the analysis uses complete cases, which {', '.join(unsupported)} does not do yet",
+                file=source, key="measurement.attrition", allowed="estimators " + ", ".join(_ATTRITION_ESTIMATORS),
+                hint="remove those estimators from [estimators], or the attrition",
             )
     return Scenario(
         name=name or Path(source).stem,
