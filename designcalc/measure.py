@@ -11,7 +11,7 @@ same in both (common random numbers: the survey has its own stream family,
 
 from __future__ import annotations
 
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, replace
 from typing import Any
 
@@ -115,6 +115,12 @@ def measurement_warnings(scenario: Scenario) -> list[str]:
     return [f"measurement.cap_rule = \"strongest\": {where}, so tie strengths are drawn at random (the same as cap_rule = \"random\" in distribution)"]
 
 
+def pair_records(perfect: Sequence[PowerRecord], measured: Sequence[PowerRecord]) -> tuple["MeasurementRecord", ...]:
+    """Each test and design point perfectly measured beside the same as measured (records of two power runs)."""
+    by_key = {_key(r): r for r in measured}
+    return tuple(_pair(r, by_key[_key(r)]) for r in perfect if _key(r) in by_key)
+
+
 def _key(r: PowerRecord) -> tuple[object, ...]:
     return (r.estimand, r.estimator, r.variance_estimator, r.units, r.treatment_probability)
 
@@ -197,8 +203,7 @@ def compare_measurement(
     if not perfect.partial:
         offset[0] = offset[1]
         measured = simulate_power(scenario, progress=shifted, **power_kwargs)
-    by_key = {_key(r): r for r in (measured.records if measured is not None else ())}
-    records = tuple(_pair(r, by_key[_key(r)]) for r in perfect.records if _key(r) in by_key)
+    records = pair_records(perfect.records, measured.records if measured is not None else ())
     warnings = list(dict.fromkeys((measured.warnings if measured is not None else perfect.warnings) + tuple(measurement_warnings(scenario))))
     base = measured if measured is not None else perfect
     settled = replace(scenario, population=replace(scenario.population, units=tuple(sorted({r.units for r in records}))) if records else scenario.population)

@@ -119,3 +119,22 @@ def test_attrition_is_read_from_the_scenario_and_refused_where_not_analysed():
     with pytest.raises(ScenarioError) as caught:
         designcalc.parse_scenario(to_toml(regression), source="a.toml")
     assert caught.value.key == "measurement.attrition" and "exposure_regression" in str(caught.value)
+
+
+def test_a_report_shows_every_test_as_measured_beside_perfect_measurement():
+    from dataclasses import replace
+
+    from designcalc.report import ReportSettings, build_report
+    from designcalc.report.render import render_markdown
+    from designcalc.report.tables import report_tables
+
+    s = _scenario({"attrition_treated": 0.4, "attrition_control": 0.1})
+    s = replace(s, estimators=replace(s.estimators, direct=("hajek",), spillover=("centred_ht",)))
+    report = build_report(s, ReportSettings(units=(300,), graphs=3, assignments_per_graph=4, precision=0.5, max_units=1200))
+    table = {t.id: t for t in report_tables(report)}["measurement"]
+    assert len(table.rows) == len(report.power.records) and "40% of treated" in table.caption
+    for m in report.measurement:
+        # The "as measured" column is the report's own power table; the perfect one a run without [measurement].
+        p = report.power.select(estimand=m.estimand, estimator=m.estimator, variance_estimator=m.variance_estimator)[0]
+        assert (m.power_measured, m.bias_measured) == (p.power, p.bias)
+    assert "As the network and outcomes will be measured" in render_markdown(report, report_tables(report), ())

@@ -21,7 +21,7 @@ from __future__ import annotations
 import datetime as _dt
 import math
 from collections.abc import Callable, Sequence
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, replace
 
 import numpy as np
 import scipy as sp
@@ -47,6 +47,7 @@ from designcalc.errors import DesignCalcError
 from designcalc.figures import SamplingSample
 from designcalc.inference import critical_value
 from designcalc.mde import MdeResult, minimum_detectable_effects
+from designcalc.measure import MeasurementRecord, pair_records
 from designcalc.multiplicity import (
     bonferroni_alpha,
     bonferroni_reject,
@@ -228,6 +229,8 @@ class Report:
     network: ExampleNetwork
     provenance: dict[str, object]
     warnings: tuple[str, ...] = field(default=())
+    # With a [measurement] table: every test as measured (the power table) beside perfect measurement.
+    measurement: tuple[MeasurementRecord, ...] = field(default=())
 
     @property
     def generated(self) -> str:
@@ -437,6 +440,15 @@ def build_report(
         cluster=cluster, store=store,
     )
     _refuse_partial(power.partial)
+    measurement: tuple[MeasurementRecord, ...] = ()
+    if scenario.measurement is not None:
+        # The power table is the study as measured; the same run without the survey and attrition is the yardstick.
+        perfect = simulate_power(
+            replace(scenario, measurement=None), batch_size=settings.batch_size, progress=phase("perfect measurement"),
+            workers=settings.workers, cluster=cluster, store=store,
+        )
+        _refuse_partial(perfect.partial)
+        measurement = pair_records(perfect.records, power.records)
     mde = minimum_detectable_effects(
         solving, relative_precision=settings.precision, batch_size=settings.batch_size, progress=phase("minimum detectable effects"),
         workers=settings.workers, cluster=cluster, store=store,
@@ -484,7 +496,7 @@ def build_report(
     warnings = tuple(dict.fromkeys([*check.warnings, *power.warnings, *mde.warnings, *size.warnings, *compare.warnings]))
     return Report(
         scenario, settings, tests, check, power, mde, size, compare, multiple, tuple(capture.samples), sample_point,
-        network, record, warnings,
+        network, record, warnings, measurement,
     )
 
 

@@ -236,6 +236,7 @@ def render_html(report: Report, tables: Sequence[Table], figures_svg: Mapping[st
         _html_table(by_id["sample-size"]), _html_table(by_id["treatment-probabilities"]),
         '<h2 id="power">3. Power of every planned test</h2>', _html_table(by_id["power"]),
         _html_figure("sampling_distributions", figures_svg),
+        *([_html_table(by_id["measurement"])] if "measurement" in by_id else []),
         '<h2 id="size">4. Size and coverage of the feasible tests</h2>', _html_table(by_id["size-coverage"]),
         '<h2 id="assumptions">5. Assumptions and regime warnings</h2>',
         f"<p>{e(report.check.regime)}: {e(report.check.regime_explanation)}</p>", _html_table(by_id["density"]),
@@ -319,6 +320,8 @@ def render_markdown(report: Report, tables: Sequence[Table], figure_stems: Seque
     out += figure("power_curves") + figure("mde_by_probability")
     out += [_md_table(by_id["mde"]), _md_table(by_id["sample-size"]), _md_table(by_id["treatment-probabilities"])]
     out += ["## 3. Power of every planned test", "", _md_table(by_id["power"]), *figure("sampling_distributions")]
+    if "measurement" in by_id:
+        out += [_md_table(by_id["measurement"])]
     out += ["## 4. Size and coverage of the feasible tests", "", _md_table(by_id["size-coverage"])]
     out += ["## 5. Assumptions and regime warnings", "", f"{report.check.regime}: {report.check.regime_explanation}", "",
             _md_table(by_id["density"]), *figure("network")]

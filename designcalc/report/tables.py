@@ -250,6 +250,26 @@ def probability_table(report: Report) -> Table:
     return Table("treatment-probabilities", "Minimum detectable effect against treatment probability", caption, columns, rows)
 
 
+def measurement_table(report: Report) -> Table:
+    """Every test as the network will be measured beside perfect measurement (scenarios with ``[measurement]``)."""
+    columns = (
+        Column("units", "units", "int"), Column("treatment probability", "treatment_probability", "fixed", 2),
+        Column("estimand", "estimand"), *_TEST_COLUMNS, Column("true effect", "true_effect", "sig", 4),
+        Column("bias, perfect", "bias_perfect", "sig", 3), Column("MC se", "bias_perfect_mc_se", "sig", 2),
+        Column("bias, as measured", "bias_measured", "sig", 3), Column("MC se", "bias_measured_mc_se", "sig", 2),
+        Column("power, perfect", "power_perfect", "fixed", 3), Column("power, as measured", "power_measured", "fixed", 3),
+        Column("power change", "power_change", "fixed", 3), Column("size, perfect", "size_perfect", "fixed", 3),
+        Column("size, as measured", "size_measured", "fixed", 3), Column("flags", "flags"),
+    )
+    return Table(
+        "measurement", "As the network and outcomes will be measured",
+        f"Measurement: {report.scenario.measurement.describe()}. Bias, power and size of every planned test with that "
+        "measurement (the power table) beside perfect measurement, on the same graphs, assignments and noise; "
+        "Monte Carlo standard errors clustered by graph.",
+        columns, _record_rows(columns, report.measurement),
+    )
+
+
 def density_table(report: Report) -> Table:
     columns = (
         Column("units per cluster" if report.scenario.population.clustered else "units", "units", "int"), Column("rho_n", "rho", "sig", 3), Column("target mean degree", "target_mean_degree", "sig", 3),
@@ -307,4 +327,5 @@ def report_tables(report: Report) -> list[Table]:
     return [
         key_answers_table(report), power_table(report), size_coverage_table(report), mde_table(report),
         sample_size_table(report), probability_table(report), density_table(report), *multiple_testing_tables(report),
+        *([measurement_table(report)] if report.measurement else []),
     ]
