@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING
 
 from designcalc.engine import ESTIMANDS, EngineProgress
@@ -211,8 +211,6 @@ def compare_designs(
 
 def _mark(rows: list[DesignRow]) -> list[DesignRow]:
     """Each design's best test per family, and the best design per family (module docstring)."""
-    from dataclasses import replace
-
     best_in: dict[tuple[str, str], DesignRow] = {}
     for r in rows:
         if not math.isfinite(r.mde):

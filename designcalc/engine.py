@@ -327,7 +327,7 @@ def clustered_point(scenario: Scenario, clusters: int, treatment_probability: fl
     return DesignPoint(units, treatment_probability, clusters=clusters, cluster_size=cluster_size)
 
 
-def test_reference(scenario: Scenario, point: DesignPoint, key: tuple[str, str, str]) -> ReferenceDistribution:
+def reference_of(scenario: Scenario, point: DesignPoint, key: tuple[str, str, str]) -> ReferenceDistribution:
     """The null distribution of a planned test's Wald statistic at ``point`` (``inference``).
 
     A clustered design's contrasts refer to t with degrees of freedom from
@@ -362,9 +362,7 @@ def observed_network(scenario: Scenario, net: SampledNetwork, units: int, graph_
     return observe_network(net.adjacency, scenario.measurement, _measurement_stream(scenario.simulation.seed, units, graph_index), weights=weights)
 
 
-def _assignment_streams(
-    entropy: int, point: DesignPoint, graph_index: int
-):
+def _assignment_streams(entropy: int, point: DesignPoint, graph_index: int) -> tuple[np.random.Generator, ...]:
     key = (point.units, int(round(point.treatment_probability * _PROBABILITY_KEY_SCALE)), graph_index)
     # The leading 0 / 1 keeps graph and assignment keys apart; the fourth child
     # (cluster effects) leaves the first three as spawn(3) made them.
@@ -539,6 +537,7 @@ class _PreparedGraph:
     # a cluster random effect: its draws per cluster and assignment (clusters, B).
     arms_all: np.ndarray | None = None
     cluster_effects: np.ndarray | None = None
+    cluster_effect_sd: float = 0.0
     contrast_cache: dict = field(default_factory=dict)  # saturation.contrast_truths' exposure expectations
     observed_all: np.ndarray | None = None  # (n, B) bool: outcomes observed, under attrition
 
@@ -612,7 +611,7 @@ def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int, batch_siz
         m = scenario.measurement
         missing = np.where(W_all, m.attrition_treated, m.attrition_control)
         observed_all = attrition_rng.random(W_all.shape) >= missing
-    cluster_effects = None
+    cluster_effects, sd = None, 0.0
     if point.clusters and scenario.outcome.cluster_icc > 0:
         sd = cluster_effect_sd(scenario.outcome, scenario.network, scenario.outcome.cluster_icc)
         cluster_effects = sd * cluster_rng.standard_normal((point.clusters, B))
@@ -634,7 +633,7 @@ def _prepare(scenario: Scenario, point: DesignPoint, graph_index: int, batch_siz
             ht_prep = replace(prep, adjacency=inclusion_weights(observed, scenario.measurement))
     return _PreparedGraph(
         net, theta, prep, W_all, noise_all, covariates_all, true_single=true_single, observed=observed, ht_prep=ht_prep,
-        arms_all=arms_all, cluster_effects=cluster_effects, observed_all=observed_all,
+        arms_all=arms_all, cluster_effects=cluster_effects, cluster_effect_sd=sd, observed_all=observed_all,
     )
 
 
@@ -782,8 +781,7 @@ def _simulate_graph(
         n_eigenvectors=g.prep.n_eigenvectors,
         min_shrinkage=g.prep.min_shrinkage,
         # With a cluster random effect the outcome's SD counts it too (effects in SD units, designcalc.clusters).
-        control_variance=control_variance(scenario.outcome, g.theta)
-        + (cluster_effect_sd(scenario.outcome, scenario.network, scenario.outcome.cluster_icc) ** 2 if point.clusters else 0.0),
+        control_variance=control_variance(scenario.outcome, g.theta) + g.cluster_effect_sd**2,
         degrees=degrees if keep_units else None,
         theta=g.theta if keep_units else None,
         cluster_sizes=g.net.cluster_sizes if keep_units else None,

@@ -43,7 +43,7 @@ from designcalc.engine import (
     contrast_truths,
     effect_coefficients,
     null_model,
-    test_reference,
+    reference_of,
     ESTIMANDS,
     DesignPoint,
     EngineProgress,
@@ -446,7 +446,7 @@ def _design_point(
     null_summary: dict[tuple[str, str, str], tuple[float, float, float, float, float]] = {}
     for key in keys:
         estimand, estimator, _ = key
-        reference = test_reference(scenario, point, key)
+        reference = reference_of(scenario, point, key)
         critical = critical_value(alpha, alternative, reference.df)
         multiplier = mde_multiplier(alpha, target, alternative, reference.df)
         est, se, _ = stack_run(null_draws, null_label(estimand), key)

@@ -22,7 +22,7 @@ import scipy.stats
 
 from designcalc._version import __version__
 from designcalc.engine import (
-    test_reference,
+    reference_of,
     STREAM_LAYOUT_VERSION,
     DesignPoint,
     EngineProgress,
@@ -204,7 +204,7 @@ def summarise_design_point(scenario: Scenario, point: DesignPoint, draws: Sequen
     records = []
     for key in draws[0].estimates:
         estimand, estimator, variance = key
-        reference = test_reference(scenario, point, key)
+        reference = reference_of(scenario, point, key)
         z = critical_value(alpha, alternative, reference.df)
         z_ci = critical_value(alpha, "two-sided", reference.df)
         est = np.stack([d.estimates[key] for d in draws])

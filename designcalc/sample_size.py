@@ -41,13 +41,14 @@ from __future__ import annotations
 import math
 import time
 from contextlib import closing
-from dataclasses import asdict, dataclass
+from dataclasses import asdict, dataclass, replace
 from typing import TYPE_CHECKING, Callable, Sequence
 
 import numpy as np
 import scipy.stats
 
 from designcalc import cluster_formulas
+from designcalc.clusters import within_cluster_sd
 from designcalc.engine import (
     ALTERNATIVE,
     ESTIMANDS,
@@ -60,12 +61,13 @@ from designcalc.engine import (
     null_label,
     null_model,
     planned_keys,
-    test_reference,
+    reference_of,
 )
 from designcalc.errors import DesignCalcError
 from designcalc.execution import Cluster, check_workers, simulate_graphs
 from designcalc.inference import Z95, critical_value, floored_power_se, probit
 from designcalc.power import CAUTIONS, FlaggedRecord, ResultTable, clustered_mean_se, clustered_sd, provenance, reject, stack_run
+from designcalc.saturation import MIN_CLUSTERS_PER_ARM, arm_counts, check_cluster_sizes, check_clusters
 from designcalc.scenario import Scenario
 
 if TYPE_CHECKING:
@@ -101,7 +103,7 @@ class SizeAxis:
             design = scenario.design.saturation
             c = 2
             if design is not None:
-                while c < 10_000 and min(_arm_counts(design, c)) < 2:
+                while c < 10_000 and min(arm_counts(design, c)) < MIN_CLUSTERS_PER_ARM:
                     c += 1
             return max(c, 4)
         if self.name == "cluster_size":
@@ -115,8 +117,6 @@ class SizeAxis:
         """Whether the density rule can be met at this size (a unit links to at most m - 1 others)."""
         m = n if self.name == "units" else (n if self.name == "cluster_size" else scenario.population.cluster_sizes.smallest)
         if self.name == "cluster_size" and scenario.design.saturation is not None:
-            from designcalc.saturation import check_cluster_sizes
-
             try:
                 check_cluster_sizes(scenario.design.saturation, m, m)
             except DesignCalcError:
@@ -129,12 +129,6 @@ class SizeAxis:
         m = n if self.name == "cluster_size" else scenario.population.cluster_sizes.nominal
         clusters = self.clusters if self.name == "cluster_size" else n
         return clusters * m * scenario.density.target_mean_degree(int(round(m)))
-
-
-def _arm_counts(design, clusters: int):
-    from designcalc.saturation import arm_counts
-
-    return arm_counts(design, clusters)
 
 
 @dataclass(frozen=True)
@@ -272,7 +266,7 @@ class _Sizes:
                 draws.append(d)
                 self.tick()
         design = self.scenario.design
-        reference = test_reference(self.scenario, point, key)
+        reference = reference_of(self.scenario, point, key)
         critical = critical_value(design.significance_level, design.alternative, reference.df)
         est, se, _ = stack_run(draws, label, key)
         ok = np.isfinite(est) & np.isfinite(se)
@@ -286,7 +280,7 @@ class _Sizes:
         if not draws or key not in draws[0].runs[ALTERNATIVE].estimates:
             return None
         design = self.scenario.design
-        reference = test_reference(self.scenario, self.point(n), key)
+        reference = reference_of(self.scenario, self.point(n), key)
         critical = critical_value(design.significance_level, design.alternative, reference.df)
         est, se, truth = stack_run(draws, ALTERNATIVE, key)
         ok = np.isfinite(est) & np.isfinite(se)
@@ -339,7 +333,7 @@ def _predicted_power(sizes: _Sizes, key: tuple[str, str, str], n: float, points:
     sd, se, mean = _local_trend(points, n)
     scenario = sizes.scenario
     design = scenario.design
-    reference = test_reference(scenario, sizes.point(max(int(round(n)), 4)), key)
+    reference = reference_of(scenario, sizes.point(max(int(round(n)), 4)), key)
     q = critical_value(design.significance_level, design.alternative, reference.df)
     if design.alternative == "greater":
         return float(scipy.stats.norm.cdf((mean - q * se) / sd))
@@ -466,8 +460,6 @@ def size_axis_and_limit(scenario: Scenario, cluster_size_for: int | None, max_un
         return SizeAxis(), max_units or population.search_limit
     if cluster_size_for is not None:
         if scenario.design.saturation is not None:
-            from designcalc.saturation import check_clusters
-
             try:
                 check_clusters(scenario.design.saturation, cluster_size_for)
             except DesignCalcError as exc:
@@ -486,14 +478,12 @@ def size_axis_and_limit(scenario: Scenario, cluster_size_for: int | None, max_un
 
 def _with_closed_form(scenario: Scenario, axis: SizeAxis, record: SizeRecord) -> SizeRecord:
     """Label the record with its axis and, for a saturation contrast, add METHODS.md §5.2's closed-form answer."""
-    from dataclasses import replace as _replace
-
-    record = _replace(record, size_axis=axis.name, clusters=axis.clusters)
+    record = replace(record, size_axis=axis.name, clusters=axis.clusters)
     design = scenario.design.saturation
     if design is None or axis.name == "units":
         return record
     value, note = _closed_form(scenario, axis, record)
-    return _replace(record, closed_form=value, closed_form_note=note)
+    return replace(record, closed_form=value, closed_form_note=note)
 
 
 def _closed_form(scenario: Scenario, axis: SizeAxis, record: SizeRecord) -> tuple[float, str]:
@@ -506,12 +496,9 @@ def _closed_form(scenario: Scenario, axis: SizeAxis, record: SizeRecord) -> tupl
     p = float(label)
     j = min(range(len(design.saturations)), key=lambda i: abs(design.saturations[i] - p))
     effect = abs(record.points[-1].true_effect)
-    from designcalc.clusters import cluster_effect_sd, within_cluster_sd
-
-    within = within_cluster_sd(scenario.outcome, scenario.network)
-    between = cluster_effect_sd(scenario.outcome, scenario.network, scenario.outcome.cluster_icc)
-    sigma = math.sqrt(within**2 + between**2)
     icc = scenario.outcome.cluster_icc
+    # Total SD: the within-cluster SD and the cluster effect's, s_v^2 = icc / (1 - icc) sigma_w^2 (designcalc.clusters).
+    sigma = within_cluster_sd(scenario.outcome, scenario.network) / math.sqrt(1.0 - icc)
     d = scenario.design
     if effect == 0 or sigma == 0:
         return float("nan"), ""
@@ -658,7 +645,7 @@ def _search(scenario: Scenario, sizes: _Sizes, limit: int, precision: float, cap
                 required_units=st.above if reached else None,
                 units_low=float("nan"), units_high=float("nan"), verified_units=None,
                 verified_power=float("nan"), verified_power_mc_se=float("nan"), relative_precision=float("nan"),
-                reference_distribution=test_reference(scenario, sizes.point(points[-1].units if points else start), key).name,
+                reference_distribution=reference_of(scenario, sizes.point(points[-1].units if points else start), key).name,
                 sd_slope=_sd_slope(_trend_points(sizes, key)), reason=st.reason, points=points, flags=tuple(flags),
             )
         )
@@ -856,7 +843,7 @@ def _refine(scenario: Scenario, sizes: _Sizes, st: _KeyState, precision: float, 
     if n_hat > limit:
         flags.append(f"the estimate lies beyond the search limit of {limit:,} {sizes.axis.noun}")
     points = sizes.points(key)
-    reference = test_reference(scenario, sizes.point(n_v), key)
+    reference = reference_of(scenario, sizes.point(n_v), key)
     # The test's size at the verified n: an over-rejecting test reaches its power "too early".
     size, size_se = sizes.null_size(n_v, key, G)
     alpha = scenario.design.significance_level

@@ -489,8 +489,10 @@ def _unit_means(
     if model.kind == "continuous":
         key = (model.spillover_shape, float(model.saturation_rate), float(model.threshold), p, treated)
         if cache is None or key not in cache:
-            shape = _shape_of(model)
-            value = _exposure_expectation(design, degrees, sizes, p, treated, lambda idx, x: shape(x))
+            def shape(idx: np.ndarray, x: np.ndarray) -> np.ndarray:
+                return spillover_shape_value(model.spillover_shape, x, rate=model.saturation_rate, threshold=model.threshold)
+
+            value = _exposure_expectation(design, degrees, sizes, p, treated, shape)
             if cache is not None:
                 cache[key] = value
         else:
@@ -502,12 +504,6 @@ def _unit_means(
 
     return _exposure_expectation(design, degrees, sizes, p, treated, f)
 
-
-def _shape_of(model: OutcomeModel):
-    def shape(x: np.ndarray) -> np.ndarray:
-        return spillover_shape_value(model.spillover_shape, x, rate=model.saturation_rate, threshold=model.threshold)
-
-    return shape
 
 
 def contrast_truths(

@@ -33,7 +33,6 @@ from designcalc.measurement import CAP_RULES, SYMMETRISE_RULES, MeasurementModel
 from designcalc.outcomes import SPILLOVER_SHAPES, OutcomeModel
 from designcalc.saturation import (
     CONTRAST_KINDS,
-    DEFAULT_CONTRASTS,
     WITHIN_RULES,
     SaturationDesign,
     check_cluster_sizes,
@@ -816,16 +815,16 @@ def _read_estimators(top: _Table, outcome: OutcomeModel, has_covariates: bool, d
 
 def _read_contrasts(t: _Table | None, design: SaturationDesign) -> EstimatorPlan:
     """A clustered design's tests are its contrasts (``designcalc.saturation``); the network estimators do not apply."""
+    # Slopes need complete randomization inside clusters; the default plan leaves them out otherwise.
+    default = design.contrasts if design.within == "complete" else tuple(c for c in design.contrasts if c != "slope")
     if t is None:
-        contrasts = design.contrasts if design.within == "complete" else tuple(c for c in design.contrasts if c != "slope")
-        return EstimatorPlan(direct=(), direct_variance=(), spillover=(), contrasts=contrasts)
+        return EstimatorPlan(direct=(), direct_variance=(), spillover=(), contrasts=default)
     for name in ("direct", "direct_variance", "spillover", "centre", "eigenvectors"):
         if t.has(name):
             raise t.error(
                 name, "applies to Bernoulli assignment; a clustered design is analysed by its contrasts",
                 allowed="contrasts = a list drawn from " + ", ".join(f'"{c}"' for c in CONTRAST_KINDS), hint="remove it",
             )
-    default = DEFAULT_CONTRASTS if design.within == "complete" else tuple(c for c in DEFAULT_CONTRASTS if c != "slope")
     if design.is_cluster_randomized:
         contrasts = t.choice_list("contrasts", ("itt",), ("itt",))
     else:

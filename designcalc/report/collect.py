@@ -34,7 +34,7 @@ from designcalc.compare import (
 from designcalc.diagnostics import ScenarioCheck, check_scenario
 from designcalc.engine import (
     clustered_point,
-    test_reference,
+    reference_of,
     ESTIMANDS,
     DesignPoint,
     EngineProgress,
@@ -294,7 +294,7 @@ class _Capture:
         for key in family:
             est = np.stack([d.estimates[key] for d in draws])
             se = np.stack([d.standard_errors[key] for d in draws])
-            reference = test_reference(self.scenario, point, key)
+            reference = reference_of(self.scenario, point, key)
             critical = critical_value(design.significance_level, design.alternative, reference.df)
             # The power table's own rule and mask (power.summarise_design_point), so the unadjusted
             # rate is that table's power exactly; p-values only order the tests for Holm.
