@@ -80,6 +80,7 @@ from designcalc.outcomes import OutcomeModel
 from designcalc.scenario import Scenario
 
 __all__ = [
+    "RESULTS_VERSION",
     "STREAM_LAYOUT_VERSION",
     "DesignPoint",
     "GraphDraws",
@@ -103,6 +104,10 @@ __all__ = [
 ]
 
 STREAM_LAYOUT_VERSION = 1
+#: Bumped whenever a change alters what a graph's simulation returns (an estimate, a standard error, a truth)
+#: without changing the random streams, so that a results store never serves numbers an older build computed
+#: under the same version number.  2: k = K eigenvectors for block models, the clustered contrasts' SEs.
+RESULTS_VERSION = 2
 ESTIMANDS = ("direct", "spillover", "total")
 TWO_HOP_MAX_UNITS = 4000  # prepare_graph's default limit for the eigen-clipped two-hop matrix
 _PROBABILITY_KEY_SCALE = 1_000_000_000

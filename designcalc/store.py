@@ -8,7 +8,7 @@ randomness.  A block is keyed by
   what ``engine.simulate_graph`` returns for a given graph (network, density
   rule, outcome model, covariates, estimator plan, seed, assignments per
   graph, the runs' outcome models and keys), the designcalc, numpy and
-  scipy versions and ``engine.STREAM_LAYOUT_VERSION``; but *not* the planned sizes, treatment
+  scipy versions, ``engine.STREAM_LAYOUT_VERSION`` and ``engine.RESULTS_VERSION``; but *not* the planned sizes, treatment
   probabilities, number of graphs, significance level, target power, names
   or execution settings, which only choose which blocks are needed or how
   they are summarised;
@@ -43,6 +43,7 @@ import scipy
 
 from designcalc._version import __version__
 from designcalc.engine import (
+    RESULTS_VERSION,
     STREAM_LAYOUT_VERSION,
     DesignPoint,
     GraphDraws,
@@ -146,6 +147,7 @@ def numbers_fingerprint(scenario: Scenario, runs: Sequence[Run] | None = None, *
         "numpy": np.__version__,
         "scipy": scipy.__version__,
         "stream_layout_version": STREAM_LAYOUT_VERSION,
+        "results_version": RESULTS_VERSION,
         "schema_version": SCHEMA_VERSION,
         "network": _canonical(scenario.network),
         "density": _canonical(scenario.density),

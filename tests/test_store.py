@@ -483,3 +483,13 @@ def test_a_damaged_store_file_never_gives_a_traceback_or_other_numbers(tmp_path)
     with store:
         again = simulate_power(s, store=store, **SMALL)
     assert without_time(again) == without_time(reference)
+
+
+def test_the_fingerprint_changes_with_the_engines_results_version(monkeypatch):
+    """A build that computes other numbers under the same designcalc version (engine.RESULTS_VERSION) never reuses old blocks."""
+    import designcalc.store as store_module
+
+    scenario = parse_scenario(DEMO.read_text(), source="a.toml")
+    before = numbers_fingerprint(scenario)
+    monkeypatch.setattr(store_module, "RESULTS_VERSION", store_module.RESULTS_VERSION + 1)
+    assert numbers_fingerprint(scenario) != before
